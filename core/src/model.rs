@@ -1,0 +1,416 @@
+//! The in-memory grid model: validated, per unit, with dense typed indices.
+//!
+//! A [`Grid`] is only built by the file loaders ([`crate::format`], [`crate::cdf`]), which
+//! validate their input; code that takes a `&Grid` may rely on the invariants listed on [`Grid`].
+
+use std::collections::HashMap;
+
+macro_rules! index_type {
+    ($(#[$doc:meta])* $name:ident) => {
+        $(#[$doc])*
+        ///
+        /// Indices are dense (`0..n`) and stable for the life of a [`Grid`]: outages are masks
+        /// ([`Outages`]), never removals, so an index never changes meaning.
+        #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+        pub struct $name(pub u32);
+
+        impl $name {
+            /// The index as a `usize`, for slicing.
+            #[inline]
+            pub fn get(self) -> usize {
+                self.0 as usize
+            }
+        }
+    };
+}
+
+index_type!(
+    /// Position of a bus in [`Grid::buses`].
+    BusIdx
+);
+index_type!(
+    /// Position of a branch in [`Grid::branches`].
+    BranchIdx
+);
+index_type!(
+    /// Position of a synchronous machine in [`Grid::machines`].
+    MachineIdx
+);
+index_type!(
+    /// Position of a wind plant in [`Grid::wind_plants`].
+    WindIdx
+);
+index_type!(
+    /// Position of a load in [`Grid::loads`].
+    LoadIdx
+);
+index_type!(
+    /// Position of a shunt in [`Grid::shunts`].
+    ShuntIdx
+);
+
+/// A validated grid, per unit on `s_base_mva` and each bus's `base_kv`.
+///
+/// Invariants (established by the loaders): every element refers to an existing bus; ids are
+/// unique within their kind; all numbers are finite; every branch has a non-zero series
+/// impedance; every island holding an in-service machine has exactly one reference bus, and
+/// every reference bus has an in-service machine.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Grid {
+    /// Descriptive name of the grid.
+    pub name: String,
+    /// System power base, MVA.
+    pub s_base_mva: f64,
+    /// Nominal frequency, Hz.
+    pub frequency_hz: f64,
+    /// Buses, indexed by [`BusIdx`].
+    pub buses: Vec<Bus>,
+    /// Lines and transformers, indexed by [`BranchIdx`].
+    pub branches: Vec<Branch>,
+    /// Fixed shunts (capacitor banks, reactors), indexed by [`ShuntIdx`].
+    pub shunts: Vec<Shunt>,
+    /// Loads, indexed by [`LoadIdx`].
+    pub loads: Vec<Load>,
+    /// Synchronous machines, indexed by [`MachineIdx`].
+    pub machines: Vec<SyncMachine>,
+    /// Wind plants (full-converter), indexed by [`WindIdx`].
+    pub wind_plants: Vec<WindPlant>,
+    pub(crate) bus_lookup: HashMap<u32, BusIdx>,
+}
+
+impl Grid {
+    /// Builds the grid's bus-number lookup. Used by the loaders after validation.
+    #[allow(clippy::too_many_arguments)] // reason: one argument per element table, all required
+    pub(crate) fn assemble(
+        name: String,
+        s_base_mva: f64,
+        frequency_hz: f64,
+        buses: Vec<Bus>,
+        branches: Vec<Branch>,
+        shunts: Vec<Shunt>,
+        loads: Vec<Load>,
+        machines: Vec<SyncMachine>,
+        wind_plants: Vec<WindPlant>,
+    ) -> Grid {
+        let bus_lookup = buses
+            .iter()
+            .enumerate()
+            .map(|(i, b)| (b.number, BusIdx(i as u32)))
+            .collect();
+        Grid {
+            name,
+            s_base_mva,
+            frequency_hz,
+            buses,
+            branches,
+            shunts,
+            loads,
+            machines,
+            wind_plants,
+            bus_lookup,
+        }
+    }
+
+    /// The index of the bus with the given external number, if any.
+    pub fn bus_idx(&self, number: u32) -> Option<BusIdx> {
+        self.bus_lookup.get(&number).copied()
+    }
+
+    /// Number of buses.
+    pub fn n_buses(&self) -> usize {
+        self.buses.len()
+    }
+
+    /// The bus at `idx`.
+    pub fn bus(&self, idx: BusIdx) -> &Bus {
+        &self.buses[idx.get()]
+    }
+
+    /// Total load of in-service loads, MW and Mvar, at nominal voltage.
+    pub fn total_load_mw_mvar(&self) -> (f64, f64) {
+        self.loads
+            .iter()
+            .filter(|l| l.in_service)
+            .fold((0.0, 0.0), |(p, q), l| {
+                (p + l.p_pu * self.s_base_mva, q + l.q_pu * self.s_base_mva)
+            })
+    }
+}
+
+/// A bus (node) of the grid.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Bus {
+    /// External bus number from the file; data, never an index.
+    pub number: u32,
+    /// Descriptive name.
+    pub name: String,
+    /// Nominal (base) voltage, kV line to line.
+    pub base_kv: f64,
+    /// Lower limit of the normal voltage band, pu.
+    pub v_min_pu: f64,
+    /// Upper limit of the normal voltage band, pu.
+    pub v_max_pu: f64,
+    /// Area number, for reports and per-area sampling.
+    pub area: u32,
+    /// True if this bus is its island's angle and power reference.
+    pub is_reference: bool,
+    /// Reference-bus voltage angle, rad (0 unless the file says otherwise).
+    pub angle_set_rad: f64,
+    /// A solved voltage stored with the data (from an imported solved case), if any.
+    pub stored_solution: Option<StoredVoltage>,
+}
+
+/// A solved bus voltage carried by an input file (e.g. an IEEE CDF case), kept for comparison.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct StoredVoltage {
+    /// Voltage magnitude, pu.
+    pub v_pu: f64,
+    /// Voltage angle, rad.
+    pub angle_rad: f64,
+}
+
+/// What kind of branch this is.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BranchKind {
+    /// An overhead line or cable, modelled as a pi section.
+    Line,
+    /// A two-winding transformer, possibly with off-nominal tap and phase shift.
+    Transformer,
+}
+
+/// A line (pi model) or transformer between two buses, per unit on the system base.
+///
+/// The ideal transformer of ratio `tap_ratio` and angle `phase_shift_rad` sits at the `from`
+/// end; the series impedance and the charging split half and half between the ends.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Branch {
+    /// Identifier, unique among branches.
+    pub id: String,
+    /// Line or transformer.
+    pub kind: BranchKind,
+    /// From bus (tap side).
+    pub from: BusIdx,
+    /// To bus.
+    pub to: BusIdx,
+    /// Series resistance, pu.
+    pub r_pu: f64,
+    /// Series reactance, pu.
+    pub x_pu: f64,
+    /// Total shunt charging susceptance, pu (half at each end).
+    pub b_pu: f64,
+    /// Off-nominal turns ratio at the from end, pu (1.0 for a line). Dimensionless.
+    pub tap_ratio: f64,
+    /// Phase shift of the from-end ideal transformer, rad (0 for a line).
+    pub phase_shift_rad: f64,
+    /// Continuous (normal) rating, MVA; 0 means unrated.
+    pub rating_mva: f64,
+    /// Short-time emergency rating, MVA; 0 means unrated.
+    pub emergency_rating_mva: f64,
+    /// In service in the base case.
+    pub in_service: bool,
+}
+
+/// A fixed shunt admittance at a bus, per unit on the system base at 1 pu voltage.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Shunt {
+    /// Identifier, unique among shunts.
+    pub id: String,
+    /// Bus it connects to.
+    pub bus: BusIdx,
+    /// Conductance, pu (consumes active power).
+    pub g_pu: f64,
+    /// Susceptance, pu (positive: capacitive, produces reactive power).
+    pub b_pu: f64,
+    /// In service in the base case.
+    pub in_service: bool,
+}
+
+/// How a load's power varies with voltage: the shares of constant impedance, constant current
+/// and constant power (each set sums to one). Dimensionless fractions.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct VoltageDependence {
+    /// Constant-impedance share of active power.
+    pub p_z: f64,
+    /// Constant-current share of active power.
+    pub p_i: f64,
+    /// Constant-power share of active power.
+    pub p_p: f64,
+    /// Constant-impedance share of reactive power.
+    pub q_z: f64,
+    /// Constant-current share of reactive power.
+    pub q_i: f64,
+    /// Constant-power share of reactive power.
+    pub q_p: f64,
+}
+
+impl VoltageDependence {
+    /// All constant power: the usual power-flow load.
+    pub const CONSTANT_POWER: VoltageDependence = VoltageDependence {
+        p_z: 0.0,
+        p_i: 0.0,
+        p_p: 1.0,
+        q_z: 0.0,
+        q_i: 0.0,
+        q_p: 1.0,
+    };
+}
+
+/// A load at a bus.
+///
+/// The power flow treats `p_pu`/`q_pu` as constant power; the voltage dependence, motor share
+/// and shedding data serve the dynamic studies.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Load {
+    /// Identifier, unique among loads.
+    pub id: String,
+    /// Bus it connects to.
+    pub bus: BusIdx,
+    /// Active power at nominal voltage, pu.
+    pub p_pu: f64,
+    /// Reactive power at nominal voltage, pu.
+    pub q_pu: f64,
+    /// Voltage dependence of the static (non-motor) part.
+    pub voltage_dependence: VoltageDependence,
+    /// Share of the active power drawn by induction motors, in `[0, 1]`. Dimensionless.
+    pub motor_share: f64,
+    /// Share of the load that may be shed, in `[0, 1]`. Dimensionless.
+    pub sheddable_fraction: f64,
+    /// Importance: 0 is the most sheddable; larger numbers are kept longer. Buses with critical
+    /// customers carry high priorities and usually a zero sheddable fraction.
+    pub priority: u32,
+    /// In service in the base case.
+    pub in_service: bool,
+}
+
+/// Dynamic data of a synchronous machine, per unit on the machine's own rating.
+///
+/// Used by the dynamic engine; a missing block means the machine has no dynamic model yet.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct MachineDynamics {
+    /// Inertia constant on the machine rating, s.
+    pub h_s: f64,
+    /// Damping, pu torque per pu speed deviation, on the machine rating.
+    pub damping_pu: f64,
+    /// Armature resistance, pu.
+    pub ra_pu: f64,
+    /// d-axis synchronous reactance, pu.
+    pub xd_pu: f64,
+    /// q-axis synchronous reactance, pu.
+    pub xq_pu: f64,
+    /// d-axis transient reactance, pu.
+    pub xd_transient_pu: f64,
+    /// q-axis transient reactance, pu.
+    pub xq_transient_pu: f64,
+    /// d-axis sub-transient reactance, pu.
+    pub xd_subtransient_pu: f64,
+    /// q-axis sub-transient reactance, pu.
+    pub xq_subtransient_pu: f64,
+    /// Leakage reactance, pu.
+    pub xl_pu: f64,
+    /// d-axis transient open-circuit time constant, s.
+    pub td0_transient_s: f64,
+    /// q-axis transient open-circuit time constant, s (0 for a salient-pole machine).
+    pub tq0_transient_s: f64,
+    /// d-axis sub-transient open-circuit time constant, s.
+    pub td0_subtransient_s: f64,
+    /// q-axis sub-transient open-circuit time constant, s.
+    pub tq0_subtransient_s: f64,
+}
+
+/// A synchronous machine (generator or condenser) at a bus.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SyncMachine {
+    /// Identifier, unique among machines.
+    pub id: String,
+    /// Bus it connects to.
+    pub bus: BusIdx,
+    /// Scheduled active power output, pu (ignored at a reference bus, which balances the island).
+    pub p_pu: f64,
+    /// Reactive output used when the machine does not regulate voltage, pu.
+    pub q_pu: f64,
+    /// Terminal voltage set-point, pu; `None` means the machine does not regulate voltage.
+    pub v_set_pu: Option<f64>,
+    /// Lower reactive limit, pu.
+    pub q_min_pu: f64,
+    /// Upper reactive limit, pu.
+    pub q_max_pu: f64,
+    /// Lower active limit, pu.
+    pub p_min_pu: f64,
+    /// Upper active limit, pu.
+    pub p_max_pu: f64,
+    /// Rating, MVA (the base of the dynamic data).
+    pub rating_mva: f64,
+    /// Dynamic data, if given.
+    pub dynamics: Option<MachineDynamics>,
+    /// In service in the base case.
+    pub in_service: bool,
+}
+
+/// Dynamic data of a full-converter wind plant (aggregated), per unit on its rating.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct WindDynamics {
+    /// Converter current limit, pu of rated current.
+    pub i_max_pu: f64,
+    /// Reactive current injected per pu voltage dip below the dip threshold, pu/pu.
+    pub k_reactive_current: f64,
+    /// Voltage below which the plant is in fault mode, pu.
+    pub v_dip_pu: f64,
+    /// Current-control time constant, s.
+    pub t_current_s: f64,
+    /// Active-current recovery rate after a fault, pu/s.
+    pub p_recovery_pu_per_s: f64,
+}
+
+/// A full-converter wind plant (aggregated) at a bus. It injects fixed P and Q in the power flow.
+#[derive(Clone, Debug, PartialEq)]
+pub struct WindPlant {
+    /// Identifier, unique among wind plants.
+    pub id: String,
+    /// Bus it connects to.
+    pub bus: BusIdx,
+    /// Rated active power, pu.
+    pub rating_pu: f64,
+    /// Active power output, pu.
+    pub p_pu: f64,
+    /// Reactive power output, pu.
+    pub q_pu: f64,
+    /// Dynamic data, if given.
+    pub dynamics: Option<WindDynamics>,
+    /// In service in the base case.
+    pub in_service: bool,
+}
+
+/// Elements out of service for one study, as a mask over the grid's indices.
+///
+/// The base-case `in_service` flags still apply; an outage takes an element out on top of them.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct Outages {
+    /// Branches taken out.
+    pub branches: Vec<BranchIdx>,
+    /// Machines taken out.
+    pub machines: Vec<MachineIdx>,
+    /// Wind plants taken out.
+    pub wind_plants: Vec<WindIdx>,
+}
+
+impl Outages {
+    /// No outages: the base case.
+    pub fn none() -> Outages {
+        Outages::default()
+    }
+
+    /// True if `branch` is in service in the grid and not taken out here.
+    pub fn branch_in_service(&self, grid: &Grid, branch: BranchIdx) -> bool {
+        grid.branches[branch.get()].in_service && !self.branches.contains(&branch)
+    }
+
+    /// True if `machine` is in service in the grid and not taken out here.
+    pub fn machine_in_service(&self, grid: &Grid, machine: MachineIdx) -> bool {
+        grid.machines[machine.get()].in_service && !self.machines.contains(&machine)
+    }
+
+    /// True if `wind` is in service in the grid and not taken out here.
+    pub fn wind_in_service(&self, grid: &Grid, wind: WindIdx) -> bool {
+        grid.wind_plants[wind.get()].in_service && !self.wind_plants.contains(&wind)
+    }
+}

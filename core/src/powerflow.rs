@@ -1,0 +1,797 @@
+//! AC power flow by Newton-Raphson in polar coordinates on a sparse LU.
+//!
+//! Unknowns are the voltage angles of every energised non-reference bus and the magnitudes of
+//! every PQ bus; equations are the matching active and reactive mismatches (DOMAIN.md 1.4-1.5).
+//! The Jacobian keeps one sparsity pattern for a given set of bus types, so its symbolic LU is
+//! computed once and only the numeric factorisation repeats.
+//!
+//! Islands: each island with an in-service voltage-regulating machine is solved with its own
+//! reference bus (the one flagged in the grid, or else the bus of its largest regulating machine);
+//! islands without one are dead and reported. All energised islands share one sparse system.
+//!
+//! Reactive limits: after convergence, a PV bus whose machines would exceed their summed limits
+//! is clamped to the limit and treated as PQ; a clamped bus whose voltage has moved to the side
+//! where it could release reactive power returns to PV. Rounds repeat until nothing switches
+//! (at most [`PowerFlowOptions::max_limit_rounds`]).
+
+use std::fmt;
+
+use faer::sparse::linalg::solvers::{Lu, SymbolicLu};
+use faer::sparse::{SparseColMatRef, SymbolicSparseColMatRef};
+use faer::{ColMut, prelude::Solve};
+
+use crate::model::{BusIdx, Grid, MachineIdx, Outages};
+use crate::topology::{Islands, islands, regulating_machines};
+use crate::ybus::{AdmittanceMatrix, branch_admittance};
+use crate::{BranchIdx, Complex, Error, WindIdx};
+
+/// Default convergence tolerance on the largest power mismatch, pu (1e-8 pu is 1e-6 MW on a
+/// 100 MVA base; DOMAIN.md 1.5, common practice).
+pub const MISMATCH_TOL_PU: f64 = 1e-8;
+
+/// Settings of a power-flow solve.
+#[derive(Clone, Debug, PartialEq)]
+pub struct PowerFlowOptions {
+    /// Convergence tolerance on the largest active or reactive mismatch, pu.
+    pub tolerance_pu: f64,
+    /// Newton iterations allowed per reactive-limit round.
+    pub max_iterations: usize,
+    /// Whether machine reactive limits are enforced.
+    pub enforce_q_limits: bool,
+    /// Rounds of PV/PQ switching allowed before giving up on the limits.
+    pub max_limit_rounds: usize,
+}
+
+impl Default for PowerFlowOptions {
+    fn default() -> Self {
+        PowerFlowOptions {
+            tolerance_pu: MISMATCH_TOL_PU,
+            max_iterations: 30,
+            enforce_q_limits: true,
+            max_limit_rounds: 10,
+        }
+    }
+}
+
+/// Why a power flow did not converge, with the place to look first.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Divergence {
+    /// Newton iterations done in all rounds.
+    pub iterations: usize,
+    /// The bus with the largest mismatch at the last iterate (external number).
+    pub worst_bus: u32,
+    /// That mismatch, pu (NaN if the iterate blew up).
+    pub worst_mismatch_pu: f64,
+    /// A short description of what went wrong.
+    pub reason: String,
+}
+
+impl fmt::Display for Divergence {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(
+            f,
+            "power flow did not converge after {} iterations ({}); largest mismatch {:.3e} pu at bus {}",
+            self.iterations, self.reason, self.worst_mismatch_pu, self.worst_bus
+        )
+    }
+}
+
+/// Which reactive limit a bus was held at.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum QLimit {
+    /// The machines' upper reactive limit (over-excited).
+    Upper,
+    /// The machines' lower reactive limit (under-excited).
+    Lower,
+}
+
+/// An energised or dead island in the solution.
+#[derive(Clone, Debug, PartialEq)]
+pub struct IslandReport {
+    /// Its buses.
+    pub buses: Vec<BusIdx>,
+    /// Its reference bus, if energised.
+    pub reference: Option<BusIdx>,
+}
+
+/// Flows at both ends of one branch, pu; each measured from its bus into the branch.
+#[derive(Clone, Copy, Debug, PartialEq, Default)]
+pub struct BranchFlow {
+    /// Active power entering at the from end, pu.
+    pub p_from_pu: f64,
+    /// Reactive power entering at the from end, pu.
+    pub q_from_pu: f64,
+    /// Active power entering at the to end, pu.
+    pub p_to_pu: f64,
+    /// Reactive power entering at the to end, pu.
+    pub q_to_pu: f64,
+}
+
+impl BranchFlow {
+    /// The larger apparent power of the two ends, pu.
+    pub fn s_max_pu(&self) -> f64 {
+        self.p_from_pu
+            .hypot(self.q_from_pu)
+            .max(self.p_to_pu.hypot(self.q_to_pu))
+    }
+}
+
+/// A converged power flow.
+#[derive(Clone, Debug, PartialEq)]
+pub struct PowerFlowSolution {
+    /// Voltage magnitude of each bus, pu (0 on dead buses).
+    pub v_pu: Vec<f64>,
+    /// Voltage angle of each bus, rad (0 on dead buses).
+    pub angle_rad: Vec<f64>,
+    /// Whether each bus is energised.
+    pub energised: Vec<bool>,
+    /// Active output of each machine, pu (0 if out of service or dead).
+    pub machine_p_pu: Vec<f64>,
+    /// Reactive output of each machine, pu.
+    pub machine_q_pu: Vec<f64>,
+    /// Buses held at a reactive limit.
+    pub q_limited: Vec<(BusIdx, QLimit)>,
+    /// Energised islands, each with its reference.
+    pub islands: Vec<IslandReport>,
+    /// Dead islands (no regulating machine).
+    pub dead_islands: Vec<IslandReport>,
+    /// Flows of each branch (zero for branches out of service).
+    pub branch_flows: Vec<BranchFlow>,
+    /// Newton iterations done in all rounds.
+    pub iterations: usize,
+    /// Largest mismatch at the solution, pu.
+    pub max_mismatch_pu: f64,
+}
+
+impl PowerFlowSolution {
+    /// Complex voltage of a bus, pu.
+    pub fn voltage(&self, bus: BusIdx) -> Complex {
+        Complex::from_polar(self.v_pu[bus.get()], self.angle_rad[bus.get()])
+    }
+
+    /// Total active losses of the branches, pu.
+    pub fn branch_losses_pu(&self) -> f64 {
+        self.branch_flows
+            .iter()
+            .map(|f| f.p_from_pu + f.p_to_pu)
+            .sum()
+    }
+}
+
+/// The result of a solve: non-convergence is an outcome to count, not an exceptional error.
+#[derive(Clone, Debug, PartialEq)]
+pub enum PowerFlowOutcome {
+    /// The solve converged.
+    Converged(PowerFlowSolution),
+    /// The solve did not converge.
+    Diverged(Divergence),
+}
+
+impl PowerFlowOutcome {
+    /// The solution, or [`Error::Diverged`].
+    pub fn converged(self) -> Result<PowerFlowSolution, Error> {
+        match self {
+            PowerFlowOutcome::Converged(s) => Ok(s),
+            PowerFlowOutcome::Diverged(d) => Err(Error::Diverged(d)),
+        }
+    }
+}
+
+/// Solves the power flow of `grid` under `outages`, starting flat (1 pu, or the set-point at
+/// regulated buses; angles zero).
+pub fn solve(grid: &Grid, outages: &Outages, options: &PowerFlowOptions) -> PowerFlowOutcome {
+    Solver::new(grid, outages).run(options)
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum BusType {
+    Dead,
+    Reference,
+    Pv,
+    Pq,
+}
+
+struct Solver<'a> {
+    grid: &'a Grid,
+    outages: &'a Outages,
+    y: AdmittanceMatrix,
+    isl: Islands,
+    island_reference: Vec<Option<BusIdx>>,
+    bus_type: Vec<BusType>,
+    /// Scheduled injection at each bus (generation less load), pu; Q part only used at PQ buses.
+    s_spec: Vec<Complex>,
+    /// Reactive output of the non-regulating sources at each bus, pu.
+    q_fixed: Vec<f64>,
+    q_min: Vec<f64>,
+    q_max: Vec<f64>,
+    v_set: Vec<f64>,
+    clamped: Vec<Option<QLimit>>,
+}
+
+impl<'a> Solver<'a> {
+    fn new(grid: &'a Grid, outages: &'a Outages) -> Solver<'a> {
+        let n = grid.n_buses();
+        let y = AdmittanceMatrix::build(grid, outages);
+        let isl = islands(grid, outages);
+        let mut bus_type = vec![BusType::Pq; n];
+        let mut v_set = vec![1.0; n];
+        let mut q_min = vec![0.0; n];
+        let mut q_max = vec![0.0; n];
+        let mut best_machine: Vec<Option<(f64, BusIdx)>> = vec![None; isl.members.len()];
+        let mut flagged: Vec<Option<BusIdx>> = vec![None; isl.members.len()];
+        for i in 0..n {
+            let bus = BusIdx(i as u32);
+            let mut any = false;
+            for m in regulating_machines(grid, outages, bus) {
+                let mach = &grid.machines[m.get()];
+                any = true;
+                v_set[i] = mach.v_set_pu.unwrap_or(1.0);
+                q_min[i] += mach.q_min_pu;
+                q_max[i] += mach.q_max_pu;
+                let island = isl.of_bus[i];
+                if best_machine[island].is_none_or(|(r, _)| mach.rating_mva > r) {
+                    best_machine[island] = Some((mach.rating_mva, bus));
+                }
+            }
+            if any {
+                bus_type[i] = BusType::Pv;
+                if grid.bus(bus).is_reference {
+                    flagged[isl.of_bus[i]] = Some(bus);
+                }
+            }
+        }
+        let island_reference: Vec<Option<BusIdx>> = (0..isl.members.len())
+            .map(|k| flagged[k].or(best_machine[k].map(|(_, b)| b)))
+            .collect();
+        for (k, members) in isl.members.iter().enumerate() {
+            match island_reference[k] {
+                Some(r) => bus_type[r.get()] = BusType::Reference,
+                None => {
+                    for b in members {
+                        bus_type[b.get()] = BusType::Dead;
+                    }
+                }
+            }
+        }
+        let mut s_spec = vec![Complex::new(0.0, 0.0); n];
+        let mut q_fixed = vec![0.0; n];
+        for (k, m) in grid.machines.iter().enumerate() {
+            if !outages.machine_in_service(grid, MachineIdx(k as u32)) {
+                continue;
+            }
+            let i = m.bus.get();
+            s_spec[i].re += m.p_pu;
+            if m.v_set_pu.is_none() {
+                s_spec[i].im += m.q_pu;
+                q_fixed[i] += m.q_pu;
+            }
+        }
+        for (k, w) in grid.wind_plants.iter().enumerate() {
+            if !outages.wind_in_service(grid, WindIdx(k as u32)) {
+                continue;
+            }
+            let i = w.bus.get();
+            s_spec[i] += Complex::new(w.p_pu, w.q_pu);
+            q_fixed[i] += w.q_pu;
+        }
+        for l in grid.loads.iter().filter(|l| l.in_service) {
+            let i = l.bus.get();
+            s_spec[i] -= Complex::new(l.p_pu, l.q_pu);
+            q_fixed[i] -= l.q_pu;
+        }
+        Solver {
+            grid,
+            outages,
+            y,
+            isl,
+            island_reference,
+            bus_type,
+            s_spec,
+            q_fixed,
+            q_min,
+            q_max,
+            v_set,
+            clamped: vec![None; n],
+        }
+    }
+
+    fn run(mut self, options: &PowerFlowOptions) -> PowerFlowOutcome {
+        let n = self.grid.n_buses();
+        let mut v: Vec<Complex> = (0..n)
+            .map(|i| match self.bus_type[i] {
+                BusType::Dead => Complex::new(0.0, 0.0),
+                BusType::Reference => {
+                    Complex::from_polar(self.v_set[i], self.grid.buses[i].angle_set_rad)
+                }
+                BusType::Pv => Complex::new(self.v_set[i], 0.0),
+                BusType::Pq => Complex::new(1.0, 0.0),
+            })
+            .collect();
+        let mut total_iterations = 0;
+        let mut rounds = 0;
+        loop {
+            match self.newton(&mut v, options) {
+                Ok(it) => total_iterations += it,
+                Err(mut d) => {
+                    d.iterations += total_iterations;
+                    return PowerFlowOutcome::Diverged(d);
+                }
+            }
+            if !options.enforce_q_limits || rounds >= options.max_limit_rounds {
+                break;
+            }
+            rounds += 1;
+            if !self.switch_limits(&v) {
+                break;
+            }
+        }
+        PowerFlowOutcome::Converged(self.finish(&v, total_iterations))
+    }
+
+    /// Reactive generation the regulating machines at bus `i` must supply at voltages `v`.
+    fn q_regulated(&self, v: &[Complex], i: usize) -> f64 {
+        let s = self.injection(v, i);
+        s.im - self.q_fixed[i]
+    }
+
+    /// Complex power injected by the network solution at bus `i`: `V_i conj((Y V)_i)`.
+    fn injection(&self, v: &[Complex], i: usize) -> Complex {
+        let mut current = Complex::new(0.0, 0.0);
+        for p in self.y.row_ptr[i]..self.y.row_ptr[i + 1] {
+            current += self.y.values[p] * v[self.y.col_idx[p]];
+        }
+        v[i] * current.conj()
+    }
+
+    /// One round of PV/PQ switching; true if anything changed.
+    fn switch_limits(&mut self, v: &[Complex]) -> bool {
+        const Q_TOL_PU: f64 = 1e-6;
+        let mut changed = false;
+        for i in 0..self.grid.n_buses() {
+            match (self.bus_type[i], self.clamped[i]) {
+                (BusType::Pv, _) => {
+                    let q = self.q_regulated(v, i);
+                    let limit = if q > self.q_max[i] + Q_TOL_PU {
+                        Some((QLimit::Upper, self.q_max[i]))
+                    } else if q < self.q_min[i] - Q_TOL_PU {
+                        Some((QLimit::Lower, self.q_min[i]))
+                    } else {
+                        None
+                    };
+                    if let Some((which, q_lim)) = limit {
+                        self.bus_type[i] = BusType::Pq;
+                        self.clamped[i] = Some(which);
+                        self.s_spec[i].im = self.q_fixed[i] + q_lim;
+                        changed = true;
+                    }
+                }
+                (BusType::Pq, Some(which)) => {
+                    // Back to PV if the voltage moved to where the machine could relax.
+                    let vm = v[i].norm();
+                    let release = match which {
+                        QLimit::Upper => vm > self.v_set[i] + 1e-9,
+                        QLimit::Lower => vm < self.v_set[i] - 1e-9,
+                    };
+                    if release {
+                        self.bus_type[i] = BusType::Pv;
+                        self.clamped[i] = None;
+                        changed = true;
+                    }
+                }
+                _ => {}
+            }
+        }
+        changed
+    }
+
+    /// Newton iterations to convergence for the current bus types; returns the iteration count.
+    fn newton(&self, v: &mut [Complex], options: &PowerFlowOptions) -> Result<usize, Divergence> {
+        let n = self.grid.n_buses();
+        // Unknown numbering: angle of each non-reference energised bus, then magnitude of each PQ bus.
+        let mut theta_var = vec![usize::MAX; n];
+        let mut vm_var = vec![usize::MAX; n];
+        let mut n_var = 0;
+        for i in 0..n {
+            if matches!(self.bus_type[i], BusType::Pv | BusType::Pq) {
+                theta_var[i] = n_var;
+                n_var += 1;
+            }
+        }
+        for i in 0..n {
+            if self.bus_type[i] == BusType::Pq {
+                vm_var[i] = n_var;
+                n_var += 1;
+            }
+        }
+        // Restore set-points at regulated buses (they may have drifted while clamped).
+        for i in 0..n {
+            if matches!(self.bus_type[i], BusType::Pv | BusType::Reference) {
+                let vm = v[i].norm();
+                if vm > 0.0 {
+                    v[i] *= self.v_set[i] / vm;
+                } else {
+                    v[i] = Complex::new(self.v_set[i], 0.0);
+                }
+            }
+        }
+        let mut mismatch = vec![0.0; n_var];
+        if n_var == 0 {
+            return Ok(0);
+        }
+        let pattern = JacobianPattern::build(&self.y, &theta_var, &vm_var, n_var);
+        let symbolic_view = SymbolicSparseColMatRef::new_checked(
+            n_var,
+            n_var,
+            &pattern.col_ptr,
+            None,
+            &pattern.row_idx,
+        );
+        let symbolic = SymbolicLu::try_new(symbolic_view)
+            .map_err(|e| self.divergence(v, 0, format!("symbolic factorisation failed: {e:?}")))?;
+        let mut values = vec![0.0; pattern.row_idx.len()];
+        let mut s_calc = vec![Complex::new(0.0, 0.0); n];
+        let mut vm = vec![0.0; n];
+        let mut va = vec![0.0; n];
+        for it in 0..=options.max_iterations {
+            for i in 0..n {
+                s_calc[i] = if self.bus_type[i] == BusType::Dead {
+                    Complex::new(0.0, 0.0)
+                } else {
+                    self.injection(v, i)
+                };
+                vm[i] = v[i].norm();
+                va[i] = v[i].arg();
+            }
+            let mut worst = 0.0_f64;
+            for i in 0..n {
+                let d = s_calc[i] - self.s_spec[i];
+                if theta_var[i] != usize::MAX {
+                    mismatch[theta_var[i]] = d.re;
+                    worst = worst.max(d.re.abs());
+                }
+                if vm_var[i] != usize::MAX {
+                    mismatch[vm_var[i]] = d.im;
+                    worst = worst.max(d.im.abs());
+                }
+            }
+            if !worst.is_finite() {
+                return Err(self.divergence(v, it, "the iterate became non-finite".to_string()));
+            }
+            if worst < options.tolerance_pu {
+                return Ok(it);
+            }
+            if it == options.max_iterations {
+                break;
+            }
+            pattern.fill(&self.y, &vm, &va, &s_calc, &mut values);
+            let view = SparseColMatRef::new(symbolic_view, &values);
+            let lu = Lu::try_new_with_symbolic(symbolic.clone(), view)
+                .map_err(|e| self.divergence(v, it, format!("singular Jacobian: {e:?}")))?;
+            lu.solve_in_place(ColMut::from_slice_mut(&mut mismatch));
+            if mismatch.iter().any(|x| !x.is_finite()) {
+                return Err(self.divergence(v, it, "singular Jacobian".to_string()));
+            }
+            for i in 0..n {
+                if theta_var[i] == usize::MAX {
+                    continue;
+                }
+                let mut mag = vm[i];
+                if vm_var[i] != usize::MAX {
+                    mag -= mismatch[vm_var[i]];
+                }
+                v[i] = Complex::from_polar(mag, va[i] - mismatch[theta_var[i]]);
+            }
+        }
+        Err(self.divergence(
+            v,
+            options.max_iterations,
+            "iteration limit reached".to_string(),
+        ))
+    }
+
+    fn divergence(&self, v: &[Complex], iterations: usize, reason: String) -> Divergence {
+        let mut worst = (0usize, f64::NAN);
+        for i in 0..self.grid.n_buses() {
+            let d = match self.bus_type[i] {
+                BusType::Dead | BusType::Reference => continue,
+                BusType::Pv => (self.injection(v, i) - self.s_spec[i]).re.abs(),
+                BusType::Pq => (self.injection(v, i) - self.s_spec[i]).norm(),
+            };
+            if worst.1.is_nan() || d > worst.1 || d.is_nan() {
+                worst = (i, d);
+            }
+        }
+        Divergence {
+            iterations,
+            worst_bus: self.grid.buses.get(worst.0).map_or(0, |b| b.number),
+            worst_mismatch_pu: worst.1,
+            reason,
+        }
+    }
+
+    fn finish(&self, v: &[Complex], iterations: usize) -> PowerFlowSolution {
+        let grid = self.grid;
+        let n = grid.n_buses();
+        let mut machine_p = vec![0.0; grid.machines.len()];
+        let mut machine_q = vec![0.0; grid.machines.len()];
+        let mut max_mismatch = 0.0_f64;
+        for i in 0..n {
+            let bus = BusIdx(i as u32);
+            if self.bus_type[i] == BusType::Dead {
+                continue;
+            }
+            let s = self.injection(v, i);
+            let d = s - self.s_spec[i];
+            match self.bus_type[i] {
+                BusType::Pq => max_mismatch = max_mismatch.max(d.re.abs()).max(d.im.abs()),
+                BusType::Pv => max_mismatch = max_mismatch.max(d.re.abs()),
+                _ => {}
+            }
+            let regulating: Vec<MachineIdx> =
+                regulating_machines(grid, self.outages, bus).collect();
+            // Fixed outputs first.
+            for (k, m) in grid.machines.iter().enumerate() {
+                if m.bus == bus && self.outages.machine_in_service(grid, MachineIdx(k as u32)) {
+                    machine_p[k] = m.p_pu;
+                    if m.v_set_pu.is_none() {
+                        machine_q[k] = m.q_pu;
+                    }
+                }
+            }
+            // The reference balances P among its regulating machines in proportion to rating.
+            if self.bus_type[i] == BusType::Reference {
+                let p_needed = s.re
+                    - (self.s_spec[i].re
+                        - regulating
+                            .iter()
+                            .map(|m| grid.machines[m.get()].p_pu)
+                            .sum::<f64>());
+                let total_rating: f64 = regulating
+                    .iter()
+                    .map(|m| grid.machines[m.get()].rating_mva)
+                    .sum();
+                for m in &regulating {
+                    machine_p[m.get()] =
+                        p_needed * grid.machines[m.get()].rating_mva / total_rating;
+                }
+            }
+            // Reactive output shared in proportion to each machine's reactive range (or rating).
+            let q_needed = s.im - self.q_fixed[i];
+            let weights: Vec<f64> = regulating
+                .iter()
+                .map(|m| {
+                    let mach = &grid.machines[m.get()];
+                    let range = mach.q_max_pu - mach.q_min_pu;
+                    if range.is_finite() && range > 0.0 {
+                        range
+                    } else {
+                        mach.rating_mva
+                    }
+                })
+                .collect();
+            let total: f64 = weights.iter().sum();
+            for (m, w) in regulating.iter().zip(&weights) {
+                machine_q[m.get()] = q_needed * w / total;
+            }
+        }
+        let mut branch_flows = vec![BranchFlow::default(); grid.branches.len()];
+        for (k, br) in grid.branches.iter().enumerate() {
+            if !self.outages.branch_in_service(grid, BranchIdx(k as u32)) {
+                continue;
+            }
+            let [ff, ft, tf, tt] =
+                branch_admittance(br.r_pu, br.x_pu, br.b_pu, br.tap_ratio, br.phase_shift_rad);
+            let (vf, vt) = (v[br.from.get()], v[br.to.get()]);
+            let s_from = vf * (ff * vf + ft * vt).conj();
+            let s_to = vt * (tf * vf + tt * vt).conj();
+            branch_flows[k] = BranchFlow {
+                p_from_pu: s_from.re,
+                q_from_pu: s_from.im,
+                p_to_pu: s_to.re,
+                q_to_pu: s_to.im,
+            };
+        }
+        let mut islands = Vec::new();
+        let mut dead_islands = Vec::new();
+        for (k, members) in self.isl.members.iter().enumerate() {
+            let report = IslandReport {
+                buses: members.clone(),
+                reference: self.island_reference[k],
+            };
+            if report.reference.is_some() {
+                islands.push(report);
+            } else {
+                dead_islands.push(report);
+            }
+        }
+        PowerFlowSolution {
+            v_pu: v.iter().map(|x| x.norm()).collect(),
+            angle_rad: v
+                .iter()
+                .map(|x| if x.norm() > 0.0 { x.arg() } else { 0.0 })
+                .collect(),
+            energised: self.bus_type.iter().map(|t| *t != BusType::Dead).collect(),
+            machine_p_pu: machine_p,
+            machine_q_pu: machine_q,
+            q_limited: self
+                .clamped
+                .iter()
+                .enumerate()
+                .filter_map(|(i, c)| c.map(|w| (BusIdx(i as u32), w)))
+                .collect(),
+            islands,
+            dead_islands,
+            branch_flows,
+            iterations,
+            max_mismatch_pu: max_mismatch,
+        }
+    }
+}
+
+/// The Jacobian's sparsity pattern in compressed-column form, with, for every admittance entry,
+/// where its four partial derivatives go.
+struct JacobianPattern {
+    col_ptr: Vec<usize>,
+    row_idx: Vec<usize>,
+    /// For admittance entry `p` (row i, column k): slots of dP_i/dθ_k, dP_i/d|V|_k,
+    /// dQ_i/dθ_k, dQ_i/d|V|_k (`usize::MAX` where the row or column is not an unknown).
+    slots: Vec<[usize; 4]>,
+    /// Row of each admittance entry.
+    entry_row: Vec<usize>,
+}
+
+impl JacobianPattern {
+    fn build(
+        y: &AdmittanceMatrix,
+        theta_var: &[usize],
+        vm_var: &[usize],
+        n_var: usize,
+    ) -> JacobianPattern {
+        const NONE: usize = usize::MAX;
+        // Collect (column, row, entry, which) and sort by column then row.
+        let mut items: Vec<(usize, usize, usize, usize)> = Vec::with_capacity(4 * y.values.len());
+        let mut entry_row = vec![0; y.values.len()];
+        for i in 0..y.n {
+            for p in y.row_ptr[i]..y.row_ptr[i + 1] {
+                entry_row[p] = i;
+                let k = y.col_idx[p];
+                let rows = [theta_var[i], theta_var[i], vm_var[i], vm_var[i]];
+                let cols = [theta_var[k], vm_var[k], theta_var[k], vm_var[k]];
+                for which in 0..4 {
+                    if rows[which] != NONE && cols[which] != NONE {
+                        items.push((cols[which], rows[which], p, which));
+                    }
+                }
+            }
+        }
+        items.sort_unstable_by_key(|&(c, r, _, _)| (c, r));
+        let mut col_ptr = vec![0; n_var + 1];
+        let mut row_idx = Vec::with_capacity(items.len());
+        let mut slots = vec![[NONE; 4]; y.values.len()];
+        for (slot, &(c, r, p, which)) in items.iter().enumerate() {
+            col_ptr[c + 1] += 1;
+            row_idx.push(r);
+            slots[p][which] = slot;
+        }
+        for c in 0..n_var {
+            col_ptr[c + 1] += col_ptr[c];
+        }
+        JacobianPattern {
+            col_ptr,
+            row_idx,
+            slots,
+            entry_row,
+        }
+    }
+
+    /// Fills the Jacobian values for voltages (`vm`, `va`) and computed injections `s_calc`
+    /// (DOMAIN.md 1.5, polar form).
+    fn fill(
+        &self,
+        y: &AdmittanceMatrix,
+        vm: &[f64],
+        va: &[f64],
+        s_calc: &[Complex],
+        values: &mut [f64],
+    ) {
+        const NONE: usize = usize::MAX;
+        for (p, slot) in self.slots.iter().enumerate() {
+            if slot.iter().all(|&s| s == NONE) {
+                continue;
+            }
+            let i = self.entry_row[p];
+            let k = y.col_idx[p];
+            let (g, b) = (y.values[p].re, y.values[p].im);
+            let d = if i == k {
+                let (pi, qi, vi) = (s_calc[i].re, s_calc[i].im, vm[i]);
+                [
+                    -qi - b * vi * vi,
+                    pi / vi + g * vi,
+                    pi - g * vi * vi,
+                    qi / vi - b * vi,
+                ]
+            } else {
+                let (s, c) = (va[i] - va[k]).sin_cos();
+                let (vi, vk) = (vm[i], vm[k]);
+                [
+                    vi * vk * (g * s - b * c),
+                    vi * (g * c + b * s),
+                    -vi * vk * (g * c + b * s),
+                    vi * (g * s - b * c),
+                ]
+            };
+            for which in 0..4 {
+                if slot[which] != NONE {
+                    values[slot[which]] = d[which];
+                }
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Checks every Jacobian entry against central finite differences of the mismatch function.
+    #[test]
+    fn jacobian_matches_finite_differences() {
+        // A 3-bus ring with a phase shifter so that the matrix is unsymmetric; made up for the test.
+        let mut entries = Vec::new();
+        for (f, t, r, x, b, tap, shift) in [
+            (0, 1, 0.02, 0.1, 0.04, 1.0, 0.0),
+            (1, 2, 0.01, 0.08, 0.0, 0.97, 0.05),
+            (0, 2, 0.03, 0.2, 0.02, 1.0, 0.0),
+        ] {
+            let [ff, ft, tf, tt] = branch_admittance(r, x, b, tap, shift);
+            entries.extend([(f, f, ff), (f, t, ft), (t, f, tf), (t, t, tt)]);
+        }
+        entries.push((2, 2, Complex::new(0.0, 0.3)));
+        let y = AdmittanceMatrix::from_entries(3, entries);
+        // Bus 0 reference, bus 1 PV, bus 2 PQ.
+        let theta_var = [usize::MAX, 0, 1];
+        let vm_var = [usize::MAX, usize::MAX, 2];
+        let pattern = JacobianPattern::build(&y, &theta_var, &vm_var, 3);
+        let state = [0.0, -0.05, -0.1, 1.04, 1.02, 0.97]; // angles then magnitudes
+        let mismatch = |x: &[f64; 6]| -> [f64; 3] {
+            let v: Vec<Complex> = (0..3)
+                .map(|i| Complex::from_polar(x[3 + i], x[i]))
+                .collect();
+            let mut cur = vec![Complex::new(0.0, 0.0); 3];
+            y.multiply(&v, &mut cur);
+            let s: Vec<Complex> = (0..3).map(|i| v[i] * cur[i].conj()).collect();
+            [s[1].re, s[2].re, s[2].im]
+        };
+        let v: Vec<Complex> = (0..3)
+            .map(|i| Complex::from_polar(state[3 + i], state[i]))
+            .collect();
+        let mut cur = vec![Complex::new(0.0, 0.0); 3];
+        y.multiply(&v, &mut cur);
+        let s_calc: Vec<Complex> = (0..3).map(|i| v[i] * cur[i].conj()).collect();
+        let mut values = vec![0.0; pattern.row_idx.len()];
+        pattern.fill(&y, &state[3..], &state[..3], &s_calc, &mut values);
+        let mut dense = [[0.0; 3]; 3];
+        for c in 0..3 {
+            for s in pattern.col_ptr[c]..pattern.col_ptr[c + 1] {
+                dense[pattern.row_idx[s]][c] = values[s];
+            }
+        }
+        // Unknown c maps to state index: θ1, θ2, |V2|.
+        let state_of = [1, 2, 5];
+        let h = 1e-6;
+        for c in 0..3 {
+            let (mut up, mut down) = (state, state);
+            up[state_of[c]] += h;
+            down[state_of[c]] -= h;
+            let (fu, fd) = (mismatch(&up), mismatch(&down));
+            for r in 0..3 {
+                let fd_value = (fu[r] - fd[r]) / (2.0 * h);
+                assert!(
+                    (fd_value - dense[r][c]).abs() < 1e-6,
+                    "J[{r}][{c}] = {} vs finite difference {fd_value}",
+                    dense[r][c]
+                );
+            }
+        }
+    }
+}

@@ -1,0 +1,2 @@
+//! The `holdfast` command line.
+fn main() {}

@@ -1,0 +1,1 @@
+//! Shared helpers for the end-to-end tests (see the files in `tests/tests/`).
