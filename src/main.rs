@@ -1,2 +1,288 @@
-//! The `holdfast` command line.
-fn main() {}
+//! The `holdfast` command line: grid checks and power flow today; simulation, datasets,
+//! training and advice as the later work lands.
+
+mod report;
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::{Context, Result, bail};
+use clap::{Parser, Subcommand};
+use holdfast_core::powerflow::{PowerFlowOptions, solve};
+use holdfast_core::{Grid, Outages, cdf, format};
+
+/// The bundled demo grid: fictional, built from typical parameter values (see its header).
+const DEMO_GRID: &str = include_str!("../scenarios/quillmoor.toml");
+const DEMO_GRID_NAME: &str = "scenarios/quillmoor.toml";
+
+/// Emergency load-shedding studies for low-inertia grids.
+///
+/// Holdfast checks and solves grid models, and (as it grows) simulates contingencies, builds
+/// labelled datasets, trains a graph network and advises how much load to shed where.
+/// Decision support for studies and operators, not a protection scheme: local grid codes,
+/// operating procedures and licensed engineers decide.
+///
+/// Exit codes: 0 success, 2 error (bad input, power flow that does not converge).
+#[derive(Parser, Debug)]
+#[command(name = "holdfast", version, propagate_version = true)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Validate, solve, import and inspect grid files.
+    #[command(subcommand)]
+    Grid(GridCommand),
+    /// Run the pipeline on the bundled demo grid (today: check it and solve it at light,
+    /// nominal and peak load).
+    ///
+    /// Example: holdfast demo
+    Demo,
+}
+
+#[derive(Subcommand, Debug)]
+enum GridCommand {
+    /// Validate a grid file, solve its power flow and print a readable summary.
+    ///
+    /// Examples:
+    ///   holdfast grid check scenarios/quillmoor.toml
+    ///   holdfast grid check scenarios/quillmoor.toml --load-scale 1.15
+    #[command(verbatim_doc_comment)]
+    Check(SolveArgs),
+    /// Solve a grid file's power flow and print bus, machine and branch results.
+    ///
+    /// Examples:
+    ///   holdfast grid solve scenarios/quillmoor.toml
+    ///   holdfast grid solve scenarios/quillmoor.toml --json > result.json
+    #[command(verbatim_doc_comment)]
+    Solve {
+        #[command(flatten)]
+        args: SolveArgs,
+        /// Print JSON instead of tables (schema: `holdfast grid solve --help` and README).
+        #[arg(long)]
+        json: bool,
+    },
+    /// Convert an IEEE Common Data Format case into a Holdfast grid file.
+    ///
+    /// The file's solved voltages are kept as `solved_v_pu` / `solved_angle_deg`.
+    ///
+    /// Example:
+    ///   holdfast grid import ieee14cdf.txt -o ieee14.toml
+    #[command(verbatim_doc_comment)]
+    Import {
+        /// The CDF file to read.
+        #[arg(value_name = "FILE.cdf")]
+        input: PathBuf,
+        /// Where to write the grid file (TOML).
+        #[arg(short, long, value_name = "FILE.toml")]
+        output: PathBuf,
+    },
+}
+
+#[derive(clap::Args, Debug)]
+struct SolveArgs {
+    /// The grid file (TOML, format_version 1).
+    #[arg(value_name = "FILE")]
+    grid: PathBuf,
+    /// Scale every load by this factor (P and Q), re-dispatching the change over the
+    /// voltage-regulating machines in proportion to rating. Default 1.
+    #[arg(long, value_name = "FACTOR", default_value_t = 1.0)]
+    load_scale: f64,
+    /// Convergence tolerance on the largest power mismatch, pu on the system base.
+    #[arg(long, value_name = "PU", default_value_t = holdfast_core::powerflow::MISMATCH_TOL_PU)]
+    tolerance_pu: f64,
+    /// Ignore machine reactive limits.
+    #[arg(long)]
+    no_q_limits: bool,
+}
+
+impl SolveArgs {
+    fn options(&self) -> Result<PowerFlowOptions> {
+        if !(self.tolerance_pu.is_finite() && self.tolerance_pu > 0.0 && self.tolerance_pu < 1.0) {
+            bail!(
+                "--tolerance-pu must be between 0 and 1 (got {})",
+                self.tolerance_pu
+            );
+        }
+        Ok(PowerFlowOptions {
+            tolerance_pu: self.tolerance_pu,
+            enforce_q_limits: !self.no_q_limits,
+            ..PowerFlowOptions::default()
+        })
+    }
+
+    fn load(&self) -> Result<Grid> {
+        if !(self.load_scale.is_finite() && self.load_scale >= 0.0 && self.load_scale <= 10.0) {
+            bail!(
+                "--load-scale must be between 0 and 10 (got {})",
+                self.load_scale
+            );
+        }
+        let grid = format::load_grid(&self.grid)?;
+        Ok(if self.load_scale == 1.0 {
+            grid
+        } else {
+            grid.with_load_scaled(self.load_scale)
+        })
+    }
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    match run(cli) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            if is_broken_pipe(&e) {
+                return ExitCode::SUCCESS;
+            }
+            eprintln!("error: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+fn is_broken_pipe(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+    })
+}
+
+fn run(cli: Cli) -> Result<()> {
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    match cli.command {
+        Command::Grid(GridCommand::Check(args)) => {
+            let grid = args.load()?;
+            let sol = solve(&grid, &Outages::none(), &args.options()?).converged()?;
+            report::summary(
+                &mut out,
+                &grid,
+                &sol,
+                &args.grid.display().to_string(),
+                args.load_scale,
+            )?;
+        }
+        Command::Grid(GridCommand::Solve { args, json }) => {
+            let grid = args.load()?;
+            let sol = solve(&grid, &Outages::none(), &args.options()?).converged()?;
+            if json {
+                serde_json::to_writer_pretty(&mut out, &report::SolveReport::new(&grid, &sol))?;
+                writeln!(out)?;
+            } else {
+                report::tables(&mut out, &grid, &sol)?;
+            }
+        }
+        Command::Grid(GridCommand::Import { input, output }) => import(&input, &output)?,
+        Command::Demo => demo(&mut out)?,
+    }
+    out.flush()?;
+    Ok(())
+}
+
+fn import(input: &Path, output: &Path) -> Result<()> {
+    let imported = cdf::load_cdf(input)?;
+    for w in &imported.warnings {
+        eprintln!("note: {w}");
+    }
+    let mut text = format!(
+        "# Imported by holdfast from {} (IEEE Common Data Format).\n# Case title: {}\n# Impedances in per unit on the system base.\n",
+        input.display(),
+        imported.title
+    );
+    text += &format::write_grid(&imported.grid)?;
+    // Refuse to write a file that would not load again.
+    format::parse_grid(&text, output)
+        .context("internal error: the converted grid does not validate")?;
+    write_atomically(output, text.as_bytes())?;
+    eprintln!(
+        "wrote {} ({} buses, {} branches, {} machines, {} loads)",
+        output.display(),
+        imported.grid.buses.len(),
+        imported.grid.branches.len(),
+        imported.grid.machines.len(),
+        imported.grid.loads.len()
+    );
+    Ok(())
+}
+
+/// Writes via a temporary file in the same folder, then renames, so a crash never leaves half a file.
+fn write_atomically(path: &Path, bytes: &[u8]) -> Result<()> {
+    let dir = path
+        .parent()
+        .filter(|d| !d.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let name = path.file_name().context("output path has no file name")?;
+    let tmp = dir.join(format!(
+        ".{}.tmp-{}",
+        name.to_string_lossy(),
+        std::process::id()
+    ));
+    let result = (|| -> std::io::Result<()> {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        std::fs::rename(&tmp, path)
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    result.with_context(|| format!("cannot write {}", path.display()))
+}
+
+fn demo(out: &mut impl Write) -> Result<()> {
+    writeln!(out, "Holdfast demo on the bundled grid {DEMO_GRID_NAME}")?;
+    writeln!(
+        out,
+        "(a fictional grid of our own design, built from typical parameter values)"
+    )?;
+    writeln!(out)?;
+    let grid = format::parse_grid(DEMO_GRID, Path::new(DEMO_GRID_NAME))?;
+    let options = PowerFlowOptions::default();
+    for (label, scale) in [
+        ("light load", 0.6),
+        ("nominal load", 1.0),
+        ("peak load", 1.15),
+    ] {
+        let scaled = grid.with_load_scaled(scale);
+        let started = std::time::Instant::now();
+        let sol = solve(&scaled, &Outages::none(), &options)
+            .converged()
+            .with_context(|| format!("demo grid at {label} (x{scale})"))?;
+        let elapsed = started.elapsed();
+        writeln!(
+            out,
+            "=== {label} (loads x{scale}), solved in {:.2} ms ===",
+            elapsed.as_secs_f64() * 1e3
+        )?;
+        report::summary(out, &scaled, &sol, DEMO_GRID_NAME, scale)?;
+        writeln!(out)?;
+    }
+    writeln!(
+        out,
+        "Next steps in the pipeline (time-domain simulation, datasets, training, advice)"
+    )?;
+    writeln!(out, "are being built; see the issues and DEVELOPERS.md.")?;
+    writeln!(out)?;
+    writeln!(out, "{}", report::CAUTION)?;
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[test]
+    fn verify_cli() {
+        Cli::command().debug_assert();
+    }
+
+    #[test]
+    fn demo_grid_parses() {
+        format::parse_grid(DEMO_GRID, Path::new(DEMO_GRID_NAME)).unwrap();
+    }
+}

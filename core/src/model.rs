@@ -414,3 +414,53 @@ impl Outages {
         grid.wind_plants[wind.get()].in_service && !self.wind_plants.contains(&wind)
     }
 }
+
+impl Grid {
+    /// A copy with every in-service load scaled by `factor` (P and Q), and the change in demand
+    /// re-dispatched over the in-service voltage-regulating machines that are not at a reference
+    /// bus, in proportion to their rating and within their active limits; what they cannot take
+    /// is left to the reference machines. Wind output is unchanged.
+    ///
+    /// This is a simple, documented dispatch rule for studies at light and peak load, not an
+    /// economic dispatch.
+    pub fn with_load_scaled(&self, factor: f64) -> Grid {
+        let mut grid = self.clone();
+        let mut delta = 0.0;
+        for load in grid.loads.iter_mut().filter(|l| l.in_service) {
+            delta += load.p_pu * (factor - 1.0);
+            load.p_pu *= factor;
+            load.q_pu *= factor;
+        }
+        // Share delta by rating among dispatchable machines, re-sharing what hits a limit.
+        let mut free: Vec<usize> = grid
+            .machines
+            .iter()
+            .enumerate()
+            .filter(|(_, m)| {
+                m.in_service && m.v_set_pu.is_some() && !grid.buses[m.bus.get()].is_reference
+            })
+            .map(|(k, _)| k)
+            .collect();
+        for _ in 0..grid.machines.len().max(1) {
+            if free.is_empty() || delta.abs() < 1e-12 {
+                break;
+            }
+            let total: f64 = free.iter().map(|&k| grid.machines[k].rating_mva).sum();
+            let mut next = Vec::new();
+            let mut left = 0.0;
+            for &k in &free {
+                let m = &mut grid.machines[k];
+                let want = m.p_pu + delta * m.rating_mva / total;
+                let got = want.clamp(m.p_min_pu, m.p_max_pu);
+                left += want - got;
+                m.p_pu = got;
+                if got == want {
+                    next.push(k);
+                }
+            }
+            delta = left;
+            free = next;
+        }
+        grid
+    }
+}

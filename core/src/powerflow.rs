@@ -141,6 +141,10 @@ pub struct PowerFlowSolution {
     pub iterations: usize,
     /// Largest mismatch at the solution, pu.
     pub max_mismatch_pu: f64,
+    /// False if reactive-limit switching was still changing bus types when the round limit was
+    /// reached: the solution satisfies the network equations but some machines may sit outside
+    /// their reactive limits.
+    pub q_limits_settled: bool,
 }
 
 impl PowerFlowSolution {
@@ -206,6 +210,9 @@ struct Solver<'a> {
     q_max: Vec<f64>,
     v_set: Vec<f64>,
     clamped: Vec<Option<QLimit>>,
+    /// Buses released from a limit once already; a second clamp keeps them clamped, which stops
+    /// the clamp-release cycling that a weak grid can otherwise fall into.
+    released_once: Vec<bool>,
 }
 
 impl<'a> Solver<'a> {
@@ -292,6 +299,7 @@ impl<'a> Solver<'a> {
             q_max,
             v_set,
             clamped: vec![None; n],
+            released_once: vec![false; n],
         }
     }
 
@@ -309,6 +317,7 @@ impl<'a> Solver<'a> {
             .collect();
         let mut total_iterations = 0;
         let mut rounds = 0;
+        let mut settled = true;
         loop {
             match self.newton(&mut v, options) {
                 Ok(it) => total_iterations += it,
@@ -317,7 +326,11 @@ impl<'a> Solver<'a> {
                     return PowerFlowOutcome::Diverged(d);
                 }
             }
-            if !options.enforce_q_limits || rounds >= options.max_limit_rounds {
+            if !options.enforce_q_limits {
+                break;
+            }
+            if rounds >= options.max_limit_rounds {
+                settled = false;
                 break;
             }
             rounds += 1;
@@ -325,7 +338,9 @@ impl<'a> Solver<'a> {
                 break;
             }
         }
-        PowerFlowOutcome::Converged(self.finish(&v, total_iterations))
+        let mut solution = self.finish(&v, total_iterations);
+        solution.q_limits_settled = settled;
+        PowerFlowOutcome::Converged(solution)
     }
 
     /// Reactive generation the regulating machines at bus `i` must supply at voltages `v`.
@@ -365,7 +380,7 @@ impl<'a> Solver<'a> {
                         changed = true;
                     }
                 }
-                (BusType::Pq, Some(which)) => {
+                (BusType::Pq, Some(which)) if !self.released_once[i] => {
                     // Back to PV if the voltage moved to where the machine could relax.
                     let vm = v[i].norm();
                     let release = match which {
@@ -375,6 +390,7 @@ impl<'a> Solver<'a> {
                     if release {
                         self.bus_type[i] = BusType::Pv;
                         self.clamped[i] = None;
+                        self.released_once[i] = true;
                         changed = true;
                     }
                 }
@@ -624,6 +640,7 @@ impl<'a> Solver<'a> {
             branch_flows,
             iterations,
             max_mismatch_pu: max_mismatch,
+            q_limits_settled: true,
         }
     }
 }
