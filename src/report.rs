@@ -182,8 +182,8 @@ pub(crate) fn tables(out: &mut impl Write, grid: &Grid, sol: &PowerFlowSolution)
     writeln!(out)?;
     writeln!(
         out,
-        "{:<24} {:>6} {:>9} {:>9}  {}",
-        "machine", "bus", "P MW", "Q Mvar", "reactive limit"
+        "{:<24} {:>6} {:>9} {:>9}  reactive limit",
+        "machine", "bus", "P MW", "Q Mvar"
     )?;
     for m in &r.machines {
         writeln!(

@@ -66,11 +66,13 @@
 
 #![deny(missing_docs)]
 
+mod blocklu;
 pub mod cdf;
 mod error;
 pub mod format;
 mod model;
 pub mod powerflow;
+pub mod synthetic;
 pub mod topology;
 pub mod ybus;
 

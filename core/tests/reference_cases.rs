@@ -1,5 +1,7 @@
 //! Power flow against published solutions. Sources and tolerances: `tests/data/SOURCES.md`.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test helpers, where a panic is the failure report
+
 use std::path::{Path, PathBuf};
 
 use holdfast_core::powerflow::{PowerFlowOptions, QLimit, solve};
