@@ -313,7 +313,7 @@ pub(crate) fn summary(
     }
     writeln!(
         out,
-        "  load: {load_p:.1} MW / {load_q:.1} Mvar; shunts: {shunt_p:.1} MW consumed, {shunt_q:.1} Mvar produced"
+        "  load: {load_p:.1} MW / {load_q:.1} Mvar; shunts: {shunt_p:.1} MW consumed, net {shunt_q:+.1} Mvar produced (capacitors +, reactors -)"
     )?;
     writeln!(
         out,

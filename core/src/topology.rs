@@ -254,3 +254,125 @@ pub fn electrical_distance(grid: &Grid, outages: &Outages) -> DistanceMatrix {
         values_pu: values,
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::format::parse_grid;
+    use std::path::Path;
+
+    /// Buses 1-2-3 in a chain plus two parallel lines 3-4, and an isolated bus 5 (made up).
+    const CHAIN: &str = r#"
+format_version = 1
+name = "chain"
+s_base_mva = 100.0
+frequency_hz = 50.0
+[[bus]]
+id = 1
+base_kv = 230.0
+reference = true
+[[bus]]
+id = 2
+base_kv = 230.0
+[[bus]]
+id = 3
+base_kv = 230.0
+[[bus]]
+id = 4
+base_kv = 230.0
+[[bus]]
+id = 5
+base_kv = 230.0
+[[line]]
+id = "a"
+from = 1
+to = 2
+r_pu = 0.01
+x_pu = 0.10
+b_pu = 0.5
+[[line]]
+id = "b"
+from = 2
+to = 3
+r_pu = 0.02
+x_pu = 0.20
+[[line]]
+id = "c1"
+from = 3
+to = 4
+r_pu = 0.0
+x_pu = 0.30
+[[line]]
+id = "c2"
+from = 3
+to = 4
+r_pu = 0.0
+x_pu = 0.60
+[[machine]]
+id = "G"
+bus = 1
+p_mw = 0.0
+v_set_pu = 1.0
+rating_mva = 100.0
+"#;
+
+    fn chain() -> Grid {
+        parse_grid(CHAIN, Path::new("chain.toml")).unwrap()
+    }
+
+    #[test]
+    fn electrical_distance_adds_in_series_and_combines_in_parallel() {
+        // Circuit laws (closed form): series impedances add; parallel ones combine as z1 z2 / (z1 + z2).
+        let g = chain();
+        let d = electrical_distance(&g, &Outages::none());
+        let b = |n: u32| g.bus_idx(n).unwrap();
+        let z12 = Complex::new(0.01, 0.10);
+        let z23 = Complex::new(0.02, 0.20);
+        let z34 = Complex::new(0.0, 0.30 * 0.60 / 0.90);
+        assert!((d.get(b(1), b(2)) - z12.norm()).abs() < 1e-12);
+        assert!((d.get(b(1), b(3)) - (z12 + z23).norm()).abs() < 1e-12);
+        assert!((d.get(b(3), b(4)) - z34.norm()).abs() < 1e-12);
+        assert!((d.get(b(1), b(4)) - (z12 + z23 + z34).norm()).abs() < 1e-12);
+        assert_eq!(d.get(b(2), b(1)), d.get(b(1), b(2)));
+        assert_eq!(d.get(b(3), b(3)), 0.0);
+        assert!(d.get(b(1), b(5)).is_infinite());
+    }
+
+    #[test]
+    fn islands_follow_outages() {
+        let g = chain();
+        let isl = islands(&g, &Outages::none());
+        assert_eq!(isl.members.len(), 2); // buses 1-4, and bus 5 alone
+        let out = Outages {
+            branches: vec![BranchIdx(1)],
+            ..Outages::default()
+        };
+        let isl = islands(&g, &out);
+        assert_eq!(isl.members.len(), 3);
+        assert_eq!(isl.of_bus[0], isl.of_bus[1]);
+        assert_ne!(isl.of_bus[1], isl.of_bus[2]);
+        // One of two parallel lines out: still connected.
+        let out = Outages {
+            branches: vec![BranchIdx(2)],
+            ..Outages::default()
+        };
+        assert_eq!(islands(&g, &out).members.len(), 2);
+    }
+
+    #[test]
+    fn bus_and_branch_graphs() {
+        let g = chain();
+        let bus = bus_graph(&g, &Outages::none());
+        assert_eq!((bus.node_count(), bus.edge_count()), (5, 4));
+        let br = branch_graph(&g, &Outages::none());
+        // Branches a-b share bus 2; b-c1, b-c2 share bus 3; c1-c2 share buses 3 and 4.
+        assert_eq!(br.node_count(), 4);
+        assert_eq!(br.edge_count(), 5);
+        let out = Outages {
+            branches: vec![BranchIdx(1)],
+            ..Outages::default()
+        };
+        let br = branch_graph(&g, &out);
+        assert_eq!((br.node_count(), br.edge_count()), (3, 2));
+    }
+}

@@ -1,0 +1,79 @@
+//! No panic on any input: random, truncated and mutated grid files and CDF files, and power
+//! flows on perturbed grids (property tests with proptest; bounded sizes).
+
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test helpers, where a panic is the failure report
+
+use std::path::Path;
+
+use holdfast_core::powerflow::{PowerFlowOptions, solve};
+use holdfast_core::{Outages, cdf, format};
+use proptest::prelude::*;
+
+const DEMO: &str = include_str!("../../scenarios/quillmoor.toml");
+const IEEE14: &str = include_str!("../../tests/data/ieee14cdf.txt");
+
+/// Replaces the byte at `pos` (if any) with `b`, keeping the text valid UTF-8 where possible.
+fn mutate(text: &str, pos: usize, b: u8) -> String {
+    let mut bytes = text.as_bytes().to_vec();
+    if !bytes.is_empty() {
+        let p = pos % bytes.len();
+        bytes[p] = b;
+    }
+    String::from_utf8_lossy(&bytes).into_owned()
+}
+
+/// Cuts the text at a char boundary near `pos`.
+fn truncate(text: &str, pos: usize) -> &str {
+    let mut p = pos % (text.len() + 1);
+    while !text.is_char_boundary(p) {
+        p -= 1;
+    }
+    &text[..p]
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn grid_loader_never_panics_on_random_text(s in "\\PC{0,400}") {
+        let _ = format::parse_grid(&s, Path::new("random.toml"));
+    }
+
+    #[test]
+    fn grid_loader_never_panics_on_truncated_files(pos in 0usize..100_000) {
+        let _ = format::parse_grid(truncate(DEMO, pos), Path::new("truncated.toml"));
+    }
+
+    #[test]
+    fn grid_loader_and_solver_never_panic_on_mutated_files(
+        edits in proptest::collection::vec((0usize..100_000, prop::sample::select(b"0123456789.-+e=[]\"nai x\n".to_vec())), 1..6)
+    ) {
+        let mut text = DEMO.to_string();
+        for (pos, b) in edits {
+            text = mutate(&text, pos, b);
+        }
+        if let Ok(grid) = format::parse_grid(&text, Path::new("mutated.toml")) {
+            // Whatever loads must solve or report divergence, never panic.
+            let _ = solve(&grid, &Outages::none(), &PowerFlowOptions::default());
+        }
+    }
+
+    #[test]
+    fn cdf_reader_never_panics(pos in 0usize..100_000, b in any::<u8>(), cut in 0usize..100_000) {
+        let mutated = mutate(IEEE14, pos, b);
+        let _ = cdf::parse_cdf(&mutated, Path::new("mutated.cdf"));
+        let _ = cdf::parse_cdf(truncate(IEEE14, cut), Path::new("truncated.cdf"));
+    }
+
+    #[test]
+    fn cdf_reader_never_panics_on_random_text(s in "\\PC{0,300}") {
+        let _ = cdf::parse_cdf(&s, Path::new("random.cdf"));
+    }
+
+    #[test]
+    fn solver_never_panics_on_extreme_loads(scale in 0.0f64..20.0, branch in 0usize..51) {
+        let grid = format::parse_grid(DEMO, Path::new("demo.toml")).unwrap().with_load_scaled(scale);
+        let outages = Outages { branches: vec![holdfast_core::BranchIdx(branch as u32)], ..Outages::default() };
+        let _ = solve(&grid, &outages, &PowerFlowOptions::default());
+    }
+}

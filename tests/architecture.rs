@@ -1,0 +1,126 @@
+//! Architecture invariants, as tests: the dependency direction between our crates, and what the
+//! lean inference crate must never pull in. See DEVELOPERS.md, "Architecture".
+
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test helpers, where a panic is the failure report
+
+use std::collections::{HashMap, HashSet};
+use std::process::Command;
+
+/// The host target, so that metadata needs no other platform's crates (and no network).
+fn host_triple() -> String {
+    let out = Command::new("rustc")
+        .arg("-vV")
+        .output()
+        .expect("run rustc -vV");
+    String::from_utf8_lossy(&out.stdout)
+        .lines()
+        .find_map(|l| l.strip_prefix("host: ").map(str::to_string))
+        .expect("rustc -vV names the host")
+}
+
+fn metadata() -> serde_json::Value {
+    let out = Command::new(env!("CARGO"))
+        .args([
+            "metadata",
+            "--format-version",
+            "1",
+            "--offline",
+            "--filter-platform",
+            &host_triple(),
+        ])
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("run cargo metadata");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// Normal (non-dev, non-build) dependency edges, by package name.
+fn normal_edges(meta: &serde_json::Value) -> HashMap<String, Vec<String>> {
+    let names: HashMap<&str, &str> = meta["packages"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| (p["id"].as_str().unwrap(), p["name"].as_str().unwrap()))
+        .collect();
+    let mut edges = HashMap::new();
+    for node in meta["resolve"]["nodes"].as_array().unwrap() {
+        let from = names[node["id"].as_str().unwrap()].to_string();
+        let to: Vec<String> = node["deps"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|d| {
+                d["dep_kinds"]
+                    .as_array()
+                    .unwrap()
+                    .iter()
+                    .any(|k| k["kind"].is_null())
+            })
+            .map(|d| names[d["pkg"].as_str().unwrap()].to_string())
+            .collect();
+        edges.entry(from).or_insert_with(Vec::new).extend(to);
+    }
+    edges
+}
+
+fn reachable(edges: &HashMap<String, Vec<String>>, start: &str) -> HashSet<String> {
+    let mut seen = HashSet::new();
+    let mut stack = vec![start.to_string()];
+    while let Some(p) = stack.pop() {
+        for d in edges.get(&p).into_iter().flatten() {
+            if seen.insert(d.clone()) {
+                stack.push(d.clone());
+            }
+        }
+    }
+    seen
+}
+
+#[test]
+fn crate_dependencies_point_one_way() {
+    let edges = normal_edges(&metadata());
+    let ours = |p: &str| -> Vec<String> {
+        edges[p]
+            .iter()
+            .filter(|d| d.starts_with("holdfast"))
+            .cloned()
+            .collect::<Vec<_>>()
+    };
+    assert!(
+        ours("holdfast-core").is_empty(),
+        "core depends on {:?}",
+        ours("holdfast-core")
+    );
+    for (krate, allowed) in [
+        ("holdfast-sim", &["holdfast-core"][..]),
+        ("holdfast-infer", &["holdfast-core"][..]),
+        (
+            "holdfast-learn",
+            &["holdfast-core", "holdfast-sim", "holdfast-infer"][..],
+        ),
+    ] {
+        for dep in ours(krate) {
+            assert!(
+                allowed.contains(&dep.as_str()),
+                "{krate} must not depend on {dep}"
+            );
+        }
+    }
+}
+
+#[test]
+fn infer_stays_lean() {
+    let edges = normal_edges(&metadata());
+    let reach = reachable(&edges, "holdfast-infer");
+    for forbidden in reach.iter().filter(|p| {
+        p.starts_with("burn")
+            || ["rayon", "indicatif", "holdfast-sim", "holdfast-learn"].contains(&p.as_str())
+    }) {
+        panic!("holdfast-infer reaches {forbidden}");
+    }
+}

@@ -1,0 +1,141 @@
+//! End-to-end tests of the `holdfast` binary. Reference data and sources: `tests/data/SOURCES.md`.
+
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test helpers, where a panic is the failure report
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn holdfast(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_holdfast"))
+        .args(args)
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("run holdfast")
+}
+
+fn data(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/data")
+        .join(name)
+}
+
+/// A fresh folder for one test.
+fn temp_dir(test: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("holdfast-cli-{test}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+fn text(bytes: &[u8]) -> String {
+    String::from_utf8_lossy(bytes).into_owned()
+}
+
+#[test]
+fn import_then_solve_reproduces_the_published_ieee14_solution() {
+    // IEEE 14-bus, UW archive: every bus within 0.002 pu and 0.05 deg of the file's solution.
+    let dir = temp_dir("ieee14");
+    let toml = dir.join("ieee14.toml");
+    let out = holdfast(&[
+        "grid",
+        "import",
+        data("ieee14cdf.txt").to_str().unwrap(),
+        "-o",
+        toml.to_str().unwrap(),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("14 buses"));
+
+    let out = holdfast(&["grid", "solve", toml.to_str().unwrap(), "--json"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let grid = holdfast_core::cdf::load_cdf(&data("ieee14cdf.txt"))
+        .unwrap()
+        .grid;
+    let buses = json["buses"].as_array().unwrap();
+    assert_eq!(buses.len(), 14);
+    for b in buses {
+        let idx = grid.bus_idx(b["id"].as_u64().unwrap() as u32).unwrap();
+        let published = grid.bus(idx).stored_solution.unwrap();
+        assert!((b["v_pu"].as_f64().unwrap() - published.v_pu).abs() < 0.002);
+        assert!((b["angle_deg"].as_f64().unwrap() - published.angle_rad.to_degrees()).abs() < 0.05);
+    }
+    // Energy conservation (closed form): generation = load (259.0 MW, the file's bus cards) +
+    // branch losses; the 14-bus case has no shunt conductance.
+    let generation: f64 = json["machines"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| m["p_mw"].as_f64().unwrap())
+        .sum();
+    let losses: f64 = json["branches"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|b| b["loss_mw"].as_f64().unwrap())
+        .sum();
+    assert!(
+        (generation - 259.0 - losses).abs() < 1e-4,
+        "generation {generation}, losses {losses}"
+    );
+
+    let out = holdfast(&["grid", "check", toml.to_str().unwrap()]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let summary = text(&out.stdout);
+    assert!(
+        summary.contains("14 buses")
+            && summary.contains("voltage range")
+            && summary.contains("limits hit"),
+        "{summary}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+#[test]
+fn bad_grid_file_names_file_line_field_and_value_and_exits_2() {
+    let dir = temp_dir("bad");
+    let bad = dir.join("bad.toml");
+    std::fs::write(
+        &bad,
+        "format_version = 1\nname = \"bad\"\ns_base_mva = 100.0\nfrequency_hz = 50.0\n\
+         [[bus]]\nid = 1\nbase_kv = 110.0\nreference = true\n\
+         [[line]]\nid = \"L1\"\nfrom = 1\nto = 9\nx_pu = 0.1\n",
+    )
+    .unwrap();
+    let out = holdfast(&["grid", "check", bad.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(
+        err.contains("bad.toml")
+            && err.contains("line 12")
+            && err.contains("`to` = 9")
+            && err.contains("no bus"),
+        "{err}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+#[test]
+fn demo_checks_the_demo_grid_at_three_load_levels_with_the_caution() {
+    let out = holdfast(&["demo"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    for level in ["light load", "nominal load", "peak load"] {
+        assert!(s.contains(level), "{s}");
+    }
+    assert!(s.contains("fictional"));
+    assert!(s.contains("not a protection scheme") && s.contains("licensed engineers"));
+}
+
+#[test]
+fn help_shows_examples_and_the_caution() {
+    let out = holdfast(&["--help"]);
+    assert!(out.status.success());
+    let s = text(&out.stdout);
+    assert!(
+        s.contains("grid") && s.contains("demo") && s.contains("licensed engineers"),
+        "{s}"
+    );
+    let out = holdfast(&["grid", "check", "--help"]);
+    assert!(text(&out.stdout).contains("holdfast grid check scenarios/quillmoor.toml"));
+}
