@@ -4,7 +4,7 @@
 //! # Main types
 //! - [`Grid`]: a validated grid in per unit, with dense typed indices ([`BusIdx`], [`BranchIdx`],
 //!   [`MachineIdx`], [`WindIdx`], [`LoadIdx`], [`ShuntIdx`]).
-//! - [`format`]: the grid file (TOML, `format_version = 1`) and its loader, which reports every
+//! - [`format`](mod@format): the grid file (TOML, `format_version = 1`) and its loader, which reports every
 //!   problem with file, line, field and value.
 //! - [`cdf`]: import of IEEE Common Data Format files, including their solved voltages.
 //! - [`topology`]: the bus graph, the branch graph, islands and electrical distance.

@@ -2,7 +2,7 @@
 //!
 //! The format is documented for users, with a complete annotated example, in
 //! `scenarios/README.md`. The record types here are the file's schema (a boundary): they convert
-//! into the validated [`Grid`](crate::Grid) and never appear in the in-memory model.
+//! into the validated [`Grid`] and never appear in the in-memory model.
 //!
 //! Loading reports every problem it finds at once, each with file, line, record, field and value.
 
