@@ -50,6 +50,7 @@ enum GridCommand {
     /// Examples:
     ///   holdfast grid check scenarios/quillmoor.toml
     ///   holdfast grid check scenarios/quillmoor.toml --load-scale 1.15
+    ///   holdfast grid check scenarios/quillmoor.toml --outage "Windrise A Wind"
     #[command(verbatim_doc_comment)]
     Check(SolveArgs),
     /// Solve a grid file's power flow and print bus, machine and branch results.
@@ -97,6 +98,10 @@ struct SolveArgs {
     /// Ignore machine reactive limits.
     #[arg(long)]
     no_q_limits: bool,
+    /// Take a branch, machine or wind plant out of service by its id (repeatable), e.g. to see
+    /// the islands and flows after an outage.
+    #[arg(long = "outage", value_name = "ID")]
+    outages: Vec<String>,
 }
 
 impl SolveArgs {
@@ -112,6 +117,10 @@ impl SolveArgs {
             enforce_q_limits: !self.no_q_limits,
             ..PowerFlowOptions::default()
         })
+    }
+
+    fn outages(&self, grid: &Grid) -> Result<Outages> {
+        Ok(Outages::from_ids(grid, &self.outages)?)
     }
 
     fn load(&self) -> Result<Grid> {
@@ -157,23 +166,32 @@ fn run(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Grid(GridCommand::Check(args)) => {
             let grid = args.load()?;
-            let sol = solve(&grid, &Outages::none(), &args.options()?).converged()?;
+            let outages = args.outages(&grid)?;
+            let sol = solve(&grid, &outages, &args.options()?).converged()?;
+            if !args.outages.is_empty() {
+                writeln!(out, "Outages: {}", args.outages.join(", "))?;
+            }
             report::summary(
                 &mut out,
                 &grid,
                 &sol,
+                &outages,
                 &args.grid.display().to_string(),
                 args.load_scale,
             )?;
         }
         Command::Grid(GridCommand::Solve { args, json }) => {
             let grid = args.load()?;
-            let sol = solve(&grid, &Outages::none(), &args.options()?).converged()?;
+            let outages = args.outages(&grid)?;
+            let sol = solve(&grid, &outages, &args.options()?).converged()?;
             if json {
-                serde_json::to_writer_pretty(&mut out, &report::SolveReport::new(&grid, &sol))?;
+                serde_json::to_writer_pretty(
+                    &mut out,
+                    &report::SolveReport::new(&grid, &sol, &outages),
+                )?;
                 writeln!(out)?;
             } else {
-                report::tables(&mut out, &grid, &sol)?;
+                report::tables(&mut out, &grid, &sol, &outages)?;
             }
         }
         Command::Grid(GridCommand::Import { input, output }) => import(&input, &output)?,
@@ -258,7 +276,7 @@ fn demo(out: &mut impl Write) -> Result<()> {
             "=== {label} (loads x{scale}), solved in {:.2} ms ===",
             elapsed.as_secs_f64() * 1e3
         )?;
-        report::summary(out, &scaled, &sol, DEMO_GRID_NAME, scale)?;
+        report::summary(out, &scaled, &sol, &Outages::none(), DEMO_GRID_NAME, scale)?;
         writeln!(out)?;
     }
     writeln!(

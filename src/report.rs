@@ -3,7 +3,7 @@
 use std::io::{self, Write};
 
 use holdfast_core::powerflow::{PowerFlowSolution, QLimit};
-use holdfast_core::{BusIdx, Grid};
+use holdfast_core::{BranchIdx, BusIdx, Grid, Outages, WindIdx};
 use serde::Serialize;
 
 /// The caution shown wherever Holdfast speaks of shedding load.
@@ -81,7 +81,7 @@ fn q_limit_of(sol: &PowerFlowSolution, bus: BusIdx) -> Option<&'static str> {
 }
 
 impl SolveReport {
-    pub(crate) fn new(grid: &Grid, sol: &PowerFlowSolution) -> SolveReport {
+    pub(crate) fn new(grid: &Grid, sol: &PowerFlowSolution, outages: &Outages) -> SolveReport {
         let s = grid.s_base_mva;
         let number = |b: BusIdx| grid.bus(b).number;
         SolveReport {
@@ -135,7 +135,7 @@ impl SolveReport {
                         id: b.id.clone(),
                         from: number(b.from),
                         to: number(b.to),
-                        in_service: b.in_service,
+                        in_service: outages.branch_in_service(grid, BranchIdx(k as u32)),
                         p_from_mw: f.p_from_pu * s,
                         q_from_mvar: f.q_from_pu * s,
                         p_to_mw: f.p_to_pu * s,
@@ -151,8 +151,13 @@ impl SolveReport {
 }
 
 /// Bus, machine and branch tables.
-pub(crate) fn tables(out: &mut impl Write, grid: &Grid, sol: &PowerFlowSolution) -> io::Result<()> {
-    let r = SolveReport::new(grid, sol);
+pub(crate) fn tables(
+    out: &mut impl Write,
+    grid: &Grid,
+    sol: &PowerFlowSolution,
+    outages: &Outages,
+) -> io::Result<()> {
+    let r = SolveReport::new(grid, sol, outages);
     writeln!(
         out,
         "Grid: {}   converged in {} iterations, largest mismatch {:.2e} MVA",
@@ -231,6 +236,7 @@ pub(crate) fn summary(
     out: &mut impl Write,
     grid: &Grid,
     sol: &PowerFlowSolution,
+    outages: &Outages,
     source: &str,
     load_scale: f64,
 ) -> io::Result<()> {
@@ -284,7 +290,9 @@ pub(crate) fn summary(
     let (wind_p, wind_q) = grid
         .wind_plants
         .iter()
-        .filter(|w| w.in_service)
+        .enumerate()
+        .filter(|(k, _)| outages.wind_in_service(grid, WindIdx(*k as u32)))
+        .map(|(_, w)| w)
         .fold((0.0, 0.0), |(p, q), w| (p + w.p_pu * s, q + w.q_pu * s));
     let (load_p, load_q) = grid.total_load_mw_mvar();
     let shunt_p: f64 = grid

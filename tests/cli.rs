@@ -139,3 +139,28 @@ fn help_shows_examples_and_the_caution() {
     let out = holdfast(&["grid", "check", "--help"]);
     assert!(text(&out.stdout).contains("holdfast grid check scenarios/quillmoor.toml"));
 }
+
+#[test]
+fn outages_split_islands_and_unknown_ids_are_errors() {
+    // Opening the step-up transformer of a plant leaves its terminal bus as an island of its own
+    // (topology, by construction of the demo grid); the rest is solved with another reference.
+    let out = holdfast(&[
+        "grid",
+        "check",
+        "scenarios/quillmoor.toml",
+        "--outage",
+        "Fenmouth Peaker step-up",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    assert!(s.contains("islands: 2 energised"), "{s}");
+    let out = holdfast(&[
+        "grid",
+        "check",
+        "scenarios/quillmoor.toml",
+        "--outage",
+        "no such line",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("\"no such line\""));
+}

@@ -110,6 +110,12 @@ pub enum Error {
     /// The power flow did not converge.
     #[error("{0}")]
     Diverged(crate::powerflow::Divergence),
+    /// An outage names an element the grid does not have.
+    #[error("no branch, machine or wind plant has the id \"{id}\"")]
+    UnknownElement {
+        /// The id asked for.
+        id: String,
+    },
     /// A grid could not be written out.
     #[error("cannot serialise grid: {0}")]
     Serialise(String),

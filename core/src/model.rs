@@ -399,6 +399,25 @@ impl Outages {
         Outages::default()
     }
 
+    /// Outages of the branches, machines and wind plants with these ids (branch ids are looked
+    /// up first, then machines, then wind plants).
+    pub fn from_ids<S: AsRef<str>>(grid: &Grid, ids: &[S]) -> Result<Outages, crate::Error> {
+        let mut out = Outages::default();
+        for id in ids {
+            let id = id.as_ref();
+            if let Some(k) = grid.branches.iter().position(|b| b.id == id) {
+                out.branches.push(BranchIdx(k as u32));
+            } else if let Some(k) = grid.machines.iter().position(|m| m.id == id) {
+                out.machines.push(MachineIdx(k as u32));
+            } else if let Some(k) = grid.wind_plants.iter().position(|w| w.id == id) {
+                out.wind_plants.push(WindIdx(k as u32));
+            } else {
+                return Err(crate::Error::UnknownElement { id: id.to_string() });
+            }
+        }
+        Ok(out)
+    }
+
     /// True if `branch` is in service in the grid and not taken out here.
     pub fn branch_in_service(&self, grid: &Grid, branch: BranchIdx) -> bool {
         grid.branches[branch.get()].in_service && !self.branches.contains(&branch)

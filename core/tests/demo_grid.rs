@@ -11,7 +11,8 @@ use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{BranchIdx, Grid, Outages, format};
 
 fn demo() -> Grid {
-    format::load_grid(&Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/quillmoor.toml")).unwrap()
+    format::load_grid(&Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/quillmoor.toml"))
+        .unwrap()
 }
 
 #[test]
@@ -19,7 +20,9 @@ fn base_case_is_sound_at_light_nominal_and_peak_load() {
     let base = demo();
     for scale in [0.6, 1.0, 1.15] {
         let grid = base.with_load_scaled(scale);
-        let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default()).converged().unwrap();
+        let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
+            .converged()
+            .unwrap();
         for (i, bus) in grid.buses.iter().enumerate() {
             assert!(
                 (bus.v_min_pu..=bus.v_max_pu).contains(&sol.v_pu[i]),
@@ -30,12 +33,20 @@ fn base_case_is_sound_at_light_nominal_and_peak_load() {
         }
         for (k, br) in grid.branches.iter().enumerate() {
             let s_mva = sol.branch_flows[k].s_max_pu() * grid.s_base_mva;
-            assert!(s_mva <= br.rating_mva, "x{scale}: {} at {s_mva:.0} of {} MVA", br.id, br.rating_mva);
+            assert!(
+                s_mva <= br.rating_mva,
+                "x{scale}: {} at {s_mva:.0} of {} MVA",
+                br.id,
+                br.rating_mva
+            );
         }
         assert!(sol.q_limited.is_empty(), "x{scale}: {:?}", sol.q_limited);
         let wind: f64 = grid.wind_plants.iter().map(|w| w.p_pu).sum();
         let load: f64 = grid.loads.iter().map(|l| l.p_pu).sum();
-        assert!(wind >= 0.3 * load, "x{scale}: wind {wind} pu of load {load} pu");
+        assert!(
+            wind >= 0.3 * load,
+            "x{scale}: wind {wind} pu of load {load} pu"
+        );
     }
 }
 
@@ -43,12 +54,25 @@ fn base_case_is_sound_at_light_nominal_and_peak_load() {
 fn every_single_branch_outage_solves() {
     let grid = demo();
     for k in 0..grid.branches.len() {
-        let outages = Outages { branches: vec![BranchIdx(k as u32)], ..Outages::default() };
+        let outages = Outages {
+            branches: vec![BranchIdx(k as u32)],
+            ..Outages::default()
+        };
         let sol = solve(&grid, &outages, &PowerFlowOptions::default())
             .converged()
             .unwrap_or_else(|e| panic!("outage of {}: {e}", grid.branches[k].id));
-        let worst = sol.v_pu.iter().zip(&sol.energised).filter(|(_, e)| **e).map(|(v, _)| *v).fold(f64::INFINITY, f64::min);
+        let worst = sol
+            .v_pu
+            .iter()
+            .zip(&sol.energised)
+            .filter(|(_, e)| **e)
+            .map(|(v, _)| *v)
+            .fold(f64::INFINITY, f64::min);
         // N-1 band of common planning practice: 0.90-1.10 pu.
-        assert!(worst >= 0.90, "outage of {}: lowest voltage {worst}", grid.branches[k].id);
+        assert!(
+            worst >= 0.90,
+            "outage of {}: lowest voltage {worst}",
+            grid.branches[k].id
+        );
     }
 }
