@@ -51,6 +51,10 @@ index_type!(
 
 /// A validated grid, per unit on `s_base_mva` and each bus's `base_kv`.
 ///
+/// Fields are public so that studies can change values (loads, dispatch, set-points) on a copy;
+/// adding or removing elements is not supported (the bus-number lookup is built once), and
+/// outages belong in an [`Outages`] mask.
+///
 /// Invariants (established by the loaders): every element refers to an existing bus; ids are
 /// unique within their kind; all numbers are finite; every branch has a non-zero series
 /// impedance; every island holding an in-service machine has exactly one reference bus, and
@@ -481,5 +485,69 @@ impl Grid {
             free = next;
         }
         grid
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use crate::format::parse_grid;
+    use std::path::Path;
+
+    const THREE_MACHINES: &str = r#"
+format_version = 1
+name = "dispatch"
+s_base_mva = 100.0
+frequency_hz = 50.0
+[[bus]]
+id = 1
+base_kv = 230.0
+reference = true
+[[bus]]
+id = 2
+base_kv = 230.0
+[[line]]
+id = "L"
+from = 1
+to = 2
+x_pu = 0.05
+[[machine]]
+id = "ref"
+bus = 1
+p_mw = 0.0
+v_set_pu = 1.0
+rating_mva = 500.0
+[[machine]]
+id = "big"
+bus = 2
+p_mw = 100.0
+v_set_pu = 1.0
+rating_mva = 300.0
+p_max_mw = 130.0
+[[machine]]
+id = "small"
+bus = 2
+p_mw = 50.0
+v_set_pu = 1.0
+rating_mva = 100.0
+[[load]]
+id = "D"
+bus = 2
+p_mw = 200.0
+q_mvar = 50.0
+"#;
+
+    #[test]
+    fn load_scaling_redispatches_by_rating_within_limits() {
+        let grid = parse_grid(THREE_MACHINES, Path::new("t.toml")).unwrap();
+        // +20 % of 200 MW = +40 MW, shared 3:1 by rating: big +30 (to 130, its limit), small +10.
+        let up = grid.with_load_scaled(1.2);
+        assert!((up.loads[0].p_pu - 2.4).abs() < 1e-12 && (up.loads[0].q_pu - 0.6).abs() < 1e-12);
+        assert!((up.machines[1].p_pu - 1.3).abs() < 1e-12);
+        assert!((up.machines[2].p_pu - 0.6).abs() < 1e-12);
+        assert_eq!(up.machines[0].p_pu, 0.0, "the reference is left to the power flow");
+        // +40 %: +80 MW; big is capped at +30, the other 50 goes to small (re-shared).
+        let up = grid.with_load_scaled(1.4);
+        assert!((up.machines[1].p_pu - 1.3).abs() < 1e-12);
+        assert!((up.machines[2].p_pu - 1.0).abs() < 1e-12);
     }
 }
