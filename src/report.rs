@@ -390,6 +390,14 @@ pub(crate) fn summary(
     }
     for (k, m) in grid.machines.iter().enumerate() {
         let p = sol.machine_p_pu[k];
+        let q = sol.machine_q_pu[k];
+        if m.v_set_pu.is_some() && (q > m.q_max_pu + 1e-6 || q < m.q_min_pu - 1e-6) {
+            hits.push(format!(
+                "machine {} at {:.1} Mvar outside its reactive limits",
+                m.id,
+                q * s
+            ));
+        }
         if m.in_service && (p > m.p_max_pu + 1e-9 || p < m.p_min_pu - 1e-9) {
             hits.push(format!(
                 "machine {} at {:.1} MW outside its active limits",

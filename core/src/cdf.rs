@@ -187,7 +187,7 @@ pub fn parse_cdf(text: &str, path: &Path) -> Result<CdfImport, Error> {
     if !saw_bus || buses.is_empty() {
         return Err(err(lines.len().max(1), "no bus data found".to_string()));
     }
-    let mut import = build(path, title.trim().to_string(), s_base_mva, buses, branches)?;
+    let mut import = build(path, title.to_string(), s_base_mva, buses, branches)?;
     if !stray.is_empty() {
         let list: Vec<String> = stray.iter().map(usize::to_string).collect();
         import.warnings.push(format!(
@@ -493,12 +493,7 @@ fn build(
             problems,
         });
     }
-    let name = title
-        .get(45..)
-        .map(str::trim)
-        .filter(|s| !s.is_empty())
-        .unwrap_or(&title)
-        .to_string();
+    let name = case_name(&title);
     let grid = Grid::assemble(
         name,
         s_base,
@@ -526,9 +521,19 @@ fn build(
     warnings.push("the format gives no nominal frequency; 60 Hz assumed".to_string());
     Ok(CdfImport {
         grid,
-        title,
+        title: title.trim().to_string(),
         warnings,
     })
+}
+
+/// The case identification (title card columns 46-73), or the whole card if that is blank.
+fn case_name(title: &str) -> String {
+    title
+        .get(45..)
+        .map(str::trim)
+        .filter(|s| !s.is_empty())
+        .unwrap_or(title.trim())
+        .to_string()
 }
 
 #[cfg(test)]
@@ -546,6 +551,13 @@ BUS DATA FOLLOWS                            1 ITEMS\n   \
             err.contains("x.cdf:3") && err.contains("final voltage") && err.contains("1.06x"),
             "{err}"
         );
+    }
+
+    #[test]
+    fn case_name_comes_from_columns_46_to_73() {
+        // Title card of the UW archive's 14-bus file.
+        let title = " 08/19/93 UW ARCHIVE           100.0  1962 W IEEE 14 Bus Test Case";
+        assert_eq!(case_name(title), "IEEE 14 Bus Test Case");
     }
 
     #[test]

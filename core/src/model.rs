@@ -544,7 +544,10 @@ q_mvar = 50.0
         assert!((up.loads[0].p_pu - 2.4).abs() < 1e-12 && (up.loads[0].q_pu - 0.6).abs() < 1e-12);
         assert!((up.machines[1].p_pu - 1.3).abs() < 1e-12);
         assert!((up.machines[2].p_pu - 0.6).abs() < 1e-12);
-        assert_eq!(up.machines[0].p_pu, 0.0, "the reference is left to the power flow");
+        assert_eq!(
+            up.machines[0].p_pu, 0.0,
+            "the reference is left to the power flow"
+        );
         // +40 %: +80 MW; big is capped at +30, the other 50 goes to small (re-shared).
         let up = grid.with_load_scaled(1.4);
         assert!((up.machines[1].p_pu - 1.3).abs() < 1e-12);

@@ -12,7 +12,8 @@
 //! Reactive limits: after convergence, a PV bus whose machines would exceed their summed limits
 //! is clamped to the limit and treated as PQ; a clamped bus whose voltage has moved to the side
 //! where it could release reactive power returns to PV. Rounds repeat until nothing switches
-//! (at most [`PowerFlowOptions::max_limit_rounds`]).
+//! (at most [`PowerFlowOptions::max_limit_rounds`]). The reference machines balance their island
+//! and are not held to their limits; callers compare their output with the limits and report.
 
 use std::fmt;
 
