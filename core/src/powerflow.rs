@@ -183,7 +183,20 @@ impl PowerFlowOutcome {
 /// Solves the power flow of `grid` under `outages`, starting flat (1 pu, or the set-point at
 /// regulated buses; angles zero).
 pub fn solve(grid: &Grid, outages: &Outages, options: &PowerFlowOptions) -> PowerFlowOutcome {
-    Solver::new(grid, outages).run(options)
+    Solver::new(grid, outages).run(options, None)
+}
+
+/// Solves like [`solve`], starting from the given bus voltages (pu, one per bus), e.g. the
+/// solution of a nearby operating point. Regulated buses still start at their set-points and
+/// the reference at its angle; a start of the wrong length, or with non-finite or zero entries at
+/// energised buses, falls back to the flat start for those buses.
+pub fn solve_from(
+    grid: &Grid,
+    outages: &Outages,
+    options: &PowerFlowOptions,
+    start_v_pu: &[Complex],
+) -> PowerFlowOutcome {
+    Solver::new(grid, outages).run(options, Some(start_v_pu))
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -327,16 +340,24 @@ impl<'a> Solver<'a> {
         }
     }
 
-    fn run(mut self, options: &PowerFlowOptions) -> PowerFlowOutcome {
+    fn run(mut self, options: &PowerFlowOptions, start: Option<&[Complex]>) -> PowerFlowOutcome {
         let n = self.grid.n_buses();
+        let start = start.filter(|s| s.len() == n);
         let mut v: Vec<Complex> = (0..n)
-            .map(|i| match self.bus_type[i] {
-                BusType::Dead => Complex::new(0.0, 0.0),
-                BusType::Reference => {
-                    Complex::from_polar(self.v_set[i], self.grid.buses[i].angle_set_rad)
+            .map(|i| {
+                let given = start
+                    .map(|s| s[i])
+                    .filter(|x| x.re.is_finite() && x.im.is_finite() && x.norm() > 0.0);
+                match self.bus_type[i] {
+                    BusType::Dead => Complex::new(0.0, 0.0),
+                    BusType::Reference => {
+                        Complex::from_polar(self.v_set[i], self.grid.buses[i].angle_set_rad)
+                    }
+                    BusType::Pv => {
+                        Complex::from_polar(self.v_set[i], given.map_or(0.0, |x| x.arg()))
+                    }
+                    BusType::Pq => given.unwrap_or(Complex::new(1.0, 0.0)),
                 }
-                BusType::Pv => Complex::new(self.v_set[i], 0.0),
-                BusType::Pq => Complex::new(1.0, 0.0),
             })
             .collect();
         let mut lu = BlockLu::new(n, &self.y.row_ptr, &self.y.col_idx);

@@ -395,3 +395,29 @@ fn cdf_import_round_trips_through_our_grid_file() {
         );
     }
 }
+
+#[test]
+fn warm_start_from_the_solution_needs_no_iteration() {
+    // Newton's method started at a root stays there (its mismatch is already below tolerance).
+    use holdfast_core::powerflow::solve_from;
+    let grid = cdf::load_cdf(&data("ieee14cdf.txt")).unwrap().grid;
+    let options = PowerFlowOptions::default();
+    let cold = solve(&grid, &Outages::none(), &options)
+        .converged()
+        .unwrap();
+    let start: Vec<_> = (0..grid.n_buses())
+        .map(|i| cold.voltage(BusIdx(i as u32)))
+        .collect();
+    let warm = solve_from(&grid, &Outages::none(), &options, &start)
+        .converged()
+        .unwrap();
+    assert!(warm.iterations <= 1, "{} iterations", warm.iterations);
+    for i in 0..grid.n_buses() {
+        assert!((warm.v_pu[i] - cold.v_pu[i]).abs() < 1e-9);
+    }
+    // A start of the wrong length falls back to flat.
+    let flat = solve_from(&grid, &Outages::none(), &options, &start[..3])
+        .converged()
+        .unwrap();
+    assert_eq!(flat.iterations, cold.iterations);
+}

@@ -77,3 +77,32 @@ proptest! {
         let _ = solve(&grid, &outages, &PowerFlowOptions::default());
     }
 }
+
+/// The demo grid with its bus records in the given order.
+fn demo_with_bus_order(order: &[usize]) -> holdfast_core::Grid {
+    let mut doc: toml::Value = toml::from_str(DEMO).unwrap();
+    let buses = doc["bus"].as_array().unwrap().clone();
+    let shuffled: Vec<toml::Value> = order.iter().map(|&k| buses[k].clone()).collect();
+    doc["bus"] = toml::Value::Array(shuffled);
+    format::parse_grid(&toml::to_string(&doc).unwrap(), Path::new("shuffled.toml")).unwrap()
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 24, ..ProptestConfig::default() })]
+
+    /// Equivariance (a property of the equations, not of our code): numbering the buses in
+    /// another order permutes the solution and changes nothing else.
+    #[test]
+    fn bus_order_does_not_change_the_solution(order in Just((0..DEMO.matches("[[bus]]").count()).collect::<Vec<usize>>()).prop_shuffle()) {
+        let options = PowerFlowOptions::default();
+        let base = demo_with_bus_order(&(0..order.len()).collect::<Vec<_>>());
+        let shuffled = demo_with_bus_order(&order);
+        let a = solve(&base, &Outages::none(), &options).converged().unwrap();
+        let b = solve(&shuffled, &Outages::none(), &options).converged().unwrap();
+        for (i, bus) in base.buses.iter().enumerate() {
+            let j = shuffled.bus_idx(bus.number).unwrap().get();
+            prop_assert!((a.v_pu[i] - b.v_pu[j]).abs() < 1e-9);
+            prop_assert!((a.angle_rad[i] - b.angle_rad[j]).abs() < 1e-9);
+        }
+    }
+}
