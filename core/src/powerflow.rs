@@ -514,7 +514,7 @@ impl<'a> Solver<'a> {
             if it == options.max_iterations {
                 break;
             }
-            self.fill_jacobian(lu, &vm, &va, &s_calc);
+            self.fill_jacobian(lu, v, &vm, &s_calc);
             lu.factor().map_err(|e| {
                 let bus = self.grid.buses.get(e.0).map_or(0, |b| b.number);
                 self.divergence(v, it, format!("singular Jacobian block at bus {bus}"))
@@ -542,7 +542,7 @@ impl<'a> Solver<'a> {
 
     /// Loads the Jacobian for the current bus types into `lu`, with identity rows and columns
     /// for the unknowns a bus does not have.
-    fn fill_jacobian(&self, lu: &mut BlockLu, vm: &[f64], va: &[f64], s_calc: &[Complex]) {
+    fn fill_jacobian(&self, lu: &mut BlockLu, v: &[Complex], vm: &[f64], s_calc: &[Complex]) {
         lu.clear();
         let y = &self.y;
         for i in 0..y.n {
@@ -561,7 +561,7 @@ impl<'a> Solver<'a> {
                     BusType::Pv | BusType::Pq => {
                         let mut d = match col {
                             BusType::Dead | BusType::Reference => [0.0; 4],
-                            _ => jacobian_block(y.values[p], i, k, vm, va, s_calc),
+                            _ => jacobian_block(y.values[p], i, k, v, vm, s_calc),
                         };
                         if col != BusType::Pq {
                             d[1] = 0.0;
@@ -721,13 +721,14 @@ impl<'a> Solver<'a> {
 
 /// The four partial derivatives of bus `i`'s injection with respect to bus `k`'s voltage
 /// angle and magnitude, `[dP_i/dθ_k, dP_i/d|V|_k, dQ_i/dθ_k, dQ_i/d|V|_k]`, for admittance
-/// entry `y_ik`, voltages (`vm`, `va`) and computed injections `s_calc` (DOMAIN.md 1.5, polar).
+/// entry `y_ik`, complex voltages `v` with magnitudes `vm`, and computed injections `s_calc`
+/// (the polar formulas of DOMAIN.md 1.5).
 fn jacobian_block(
     y_ik: Complex,
     i: usize,
     k: usize,
+    v: &[Complex],
     vm: &[f64],
-    va: &[f64],
     s_calc: &[Complex],
 ) -> Block {
     let (g, b) = (y_ik.re, y_ik.im);
@@ -740,13 +741,14 @@ fn jacobian_block(
             qi / vi - b * vi,
         ]
     } else {
-        let (s, c) = (va[i] - va[k]).sin_cos();
-        let (vi, vk) = (vm[i], vm[k]);
+        // e = V_i conj(V_k) = |V_i||V_k| (cos θ_ik + j sin θ_ik): the polar formulas without trigonometry.
+        let e = v[i] * v[k].conj();
+        let vk = vm[k];
         [
-            vi * vk * (g * s - b * c),
-            vi * (g * c + b * s),
-            -vi * vk * (g * c + b * s),
-            vi * (g * s - b * c),
+            g * e.im - b * e.re,
+            (g * e.re + b * e.im) / vk,
+            -(g * e.re + b * e.im),
+            (g * e.im - b * e.re) / vk,
         ]
     }
 }
@@ -784,7 +786,10 @@ mod tests {
         for i in 0..3 {
             for p in y.row_ptr[i]..y.row_ptr[i + 1] {
                 let k = y.col_idx[p];
-                let block = jacobian_block(y.values[p], i, k, &state[3..], &state[..3], &s_calc);
+                let v: Vec<Complex> = (0..3)
+                    .map(|m| Complex::from_polar(state[3 + m], state[m]))
+                    .collect();
+                let block = jacobian_block(y.values[p], i, k, &v, &state[3..], &s_calc);
                 for (var, state_idx) in [(0, k), (1, 3 + k)] {
                     let (mut up, mut down) = (state, state);
                     up[state_idx] += h;
