@@ -199,6 +199,15 @@ pub fn solve_from(
     Solver::new(grid, outages).run(options, Some(start_v_pu))
 }
 
+/// A change of bus type at a reactive limit.
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Switch {
+    /// PV to PQ, held at this limit (pu).
+    Clamp(QLimit, f64),
+    /// Back from a limit to PV.
+    Release,
+}
+
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum BusType {
     Dead,
@@ -379,14 +388,16 @@ impl<'a> Solver<'a> {
             if !options.enforce_q_limits {
                 break;
             }
+            let switches = self.limit_switches(&v);
+            if switches.is_empty() {
+                break;
+            }
             if rounds >= options.max_limit_rounds {
                 settled = false;
                 break;
             }
             rounds += 1;
-            if !self.switch_limits(&v) {
-                break;
-            }
+            self.apply_switches(&switches);
         }
         let mut solution = self.finish(&v, total_iterations);
         solution.q_limits_settled = settled;
@@ -408,26 +419,18 @@ impl<'a> Solver<'a> {
         v[i] * current.conj()
     }
 
-    /// One round of PV/PQ switching; true if anything changed.
-    fn switch_limits(&mut self, v: &[Complex]) -> bool {
+    /// The PV/PQ switches the solution `v` calls for, without making them.
+    fn limit_switches(&self, v: &[Complex]) -> Vec<(usize, Switch)> {
         const Q_TOL_PU: f64 = 1e-6;
-        let mut changed = false;
+        let mut switches = Vec::new();
         for i in 0..self.grid.n_buses() {
             match (self.bus_type[i], self.clamped[i]) {
                 (BusType::Pv, _) => {
                     let q = self.q_regulated(v, i);
-                    let limit = if q > self.q_max[i] + Q_TOL_PU {
-                        Some((QLimit::Upper, self.q_max[i]))
+                    if q > self.q_max[i] + Q_TOL_PU {
+                        switches.push((i, Switch::Clamp(QLimit::Upper, self.q_max[i])));
                     } else if q < self.q_min[i] - Q_TOL_PU {
-                        Some((QLimit::Lower, self.q_min[i]))
-                    } else {
-                        None
-                    };
-                    if let Some((which, q_lim)) = limit {
-                        self.bus_type[i] = BusType::Pq;
-                        self.clamped[i] = Some(which);
-                        self.s_spec[i].im = self.q_fixed[i] + q_lim;
-                        changed = true;
+                        switches.push((i, Switch::Clamp(QLimit::Lower, self.q_min[i])));
                     }
                 }
                 (BusType::Pq, Some(which)) if !self.released_once[i] => {
@@ -438,16 +441,31 @@ impl<'a> Solver<'a> {
                         QLimit::Lower => vm < self.v_set[i] - 1e-9,
                     };
                     if release {
-                        self.bus_type[i] = BusType::Pv;
-                        self.clamped[i] = None;
-                        self.released_once[i] = true;
-                        changed = true;
+                        switches.push((i, Switch::Release));
                     }
                 }
                 _ => {}
             }
         }
-        changed
+        switches
+    }
+
+    /// Makes the switches found by [`Self::limit_switches`].
+    fn apply_switches(&mut self, switches: &[(usize, Switch)]) {
+        for &(i, switch) in switches {
+            match switch {
+                Switch::Clamp(which, q_lim) => {
+                    self.bus_type[i] = BusType::Pq;
+                    self.clamped[i] = Some(which);
+                    self.s_spec[i].im = self.q_fixed[i] + q_lim;
+                }
+                Switch::Release => {
+                    self.bus_type[i] = BusType::Pv;
+                    self.clamped[i] = None;
+                    self.released_once[i] = true;
+                }
+            }
+        }
     }
 
     /// Newton iterations to convergence for the current bus types; returns the iteration count.

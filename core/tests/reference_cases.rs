@@ -421,3 +421,20 @@ fn warm_start_from_the_solution_needs_no_iteration() {
         .unwrap();
     assert_eq!(flat.iterations, cold.iterations);
 }
+
+#[test]
+fn an_unfinished_limit_round_is_reported_not_hidden() {
+    // The 30-bus case needs bus 2 clamped at its 50 MVAr limit (published solution); with no
+    // switching rounds allowed the solve must say that the limits did not settle.
+    let grid = cdf::load_cdf(&data("ieee30cdf.txt")).unwrap().grid;
+    let none = PowerFlowOptions {
+        max_limit_rounds: 0,
+        ..PowerFlowOptions::default()
+    };
+    let sol = solve(&grid, &Outages::none(), &none).converged().unwrap();
+    assert!(!sol.q_limits_settled && sol.q_limited.is_empty());
+    let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
+        .converged()
+        .unwrap();
+    assert!(sol.q_limits_settled);
+}
