@@ -341,7 +341,6 @@ fn divergence_names_iterations_and_worst_bus() {
         err.contains("did not converge") && err.contains("iterations") && err.contains("at bus"),
         "{err}"
     );
-    let _ = BusIdx(0);
 }
 
 #[test]

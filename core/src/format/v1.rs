@@ -526,7 +526,6 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
     }
 
     let mut branches = Vec::new();
-    let mut branch_sites = Vec::new();
     let mut branch_ids = HashSet::new();
     for rec in &file.line {
         let l = rec.get_ref();
@@ -578,7 +577,6 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             emergency_rating_mva: l.emergency_rating_mva,
             in_service: l.in_service,
         });
-        branch_sites.push(s);
     }
     for rec in &file.transformer {
         let t = rec.get_ref();
@@ -618,7 +616,6 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             emergency_rating_mva: t.emergency_rating_mva,
             in_service: t.in_service,
         });
-        branch_sites.push(s);
     }
 
     let mut shunts = Vec::new();
@@ -850,7 +847,6 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
         let line = c.field_line(&s.span, "v_set_pu");
         problems.push(Problem::new(Some(line), s.label.clone(), message));
     }
-    let _ = branch_sites;
     if problems.is_empty() {
         Ok(grid)
     } else {
