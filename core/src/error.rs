@@ -116,6 +116,9 @@ pub enum Error {
         /// The id asked for.
         id: String,
     },
+    /// A network matrix could not be factorised (e.g. an island left floating).
+    #[error("singular matrix: {0}")]
+    Singular(String),
     /// A grid could not be written out.
     #[error("cannot serialise grid: {0}")]
     Serialise(String),

@@ -68,6 +68,7 @@
 
 mod blocklu;
 pub mod cdf;
+pub mod dynamics;
 mod error;
 pub mod format;
 mod model;

@@ -305,20 +305,27 @@ pub struct MachineDynamics {
     pub xd_transient_pu: f64,
     /// q-axis transient reactance, pu.
     pub xq_transient_pu: f64,
-    /// d-axis sub-transient reactance, pu.
-    pub xd_subtransient_pu: f64,
-    /// q-axis sub-transient reactance, pu.
-    pub xq_subtransient_pu: f64,
     /// Leakage reactance, pu.
     pub xl_pu: f64,
     /// d-axis transient open-circuit time constant, s.
     pub td0_transient_s: f64,
     /// q-axis transient open-circuit time constant, s (0 for a salient-pole machine).
     pub tq0_transient_s: f64,
+    /// Sub-transient data, when the data set has them (many published sets do not).
+    pub subtransient: Option<SubtransientData>,
+}
+
+/// Sub-transient data of a synchronous machine, per unit on its rating.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct SubtransientData {
+    /// d-axis sub-transient reactance, pu.
+    pub xd_pu: f64,
+    /// q-axis sub-transient reactance, pu.
+    pub xq_pu: f64,
     /// d-axis sub-transient open-circuit time constant, s.
-    pub td0_subtransient_s: f64,
+    pub td0_s: f64,
     /// q-axis sub-transient open-circuit time constant, s.
-    pub tq0_subtransient_s: f64,
+    pub tq0_s: f64,
 }
 
 /// A synchronous machine (generator or condenser) at a bus.

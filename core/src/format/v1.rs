@@ -238,14 +238,18 @@ struct MachineDynamicsRecord {
     xq_pu: f64,
     xd_transient_pu: f64,
     xq_transient_pu: f64,
-    xd_subtransient_pu: f64,
-    xq_subtransient_pu: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    xd_subtransient_pu: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    xq_subtransient_pu: Option<f64>,
     xl_pu: f64,
     td0_transient_s: f64,
     #[serde(default)]
     tq0_transient_s: f64,
-    td0_subtransient_s: f64,
-    tq0_subtransient_s: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    td0_subtransient_s: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    tq0_subtransient_s: Option<f64>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -1028,36 +1032,76 @@ fn machine_dynamics(c: &mut Checker<'_>, s: &Site, d: MachineDynamicsRecord) -> 
         ("xq_pu", d.xq_pu),
         ("xd_transient_pu", d.xd_transient_pu),
         ("xq_transient_pu", d.xq_transient_pu),
-        ("xd_subtransient_pu", d.xd_subtransient_pu),
-        ("xq_subtransient_pu", d.xq_subtransient_pu),
         ("xl_pu", d.xl_pu),
         ("td0_transient_s", d.td0_transient_s),
-        ("td0_subtransient_s", d.td0_subtransient_s),
-        ("tq0_subtransient_s", d.tq0_subtransient_s),
     ] {
         c.positive(s, &format!("dynamics.{name}"), v, 100.0);
     }
     c.number(s, "dynamics.tq0_transient_s", d.tq0_transient_s, 0.0, 100.0);
+    let subtransient = match (
+        d.xd_subtransient_pu,
+        d.xq_subtransient_pu,
+        d.td0_subtransient_s,
+        d.tq0_subtransient_s,
+    ) {
+        (Some(xd), Some(xq), Some(td0), Some(tq0)) => {
+            for (name, v) in [
+                ("xd_subtransient_pu", xd),
+                ("xq_subtransient_pu", xq),
+                ("td0_subtransient_s", td0),
+                ("tq0_subtransient_s", tq0),
+            ] {
+                c.positive(s, &format!("dynamics.{name}"), v, 100.0);
+            }
+            Some(SubtransientData {
+                xd_pu: xd,
+                xq_pu: xq,
+                td0_s: td0,
+                tq0_s: tq0,
+            })
+        }
+        (None, None, None, None) => None,
+        _ => {
+            c.report_record(
+                s,
+                "give all four sub-transient fields (xd_subtransient_pu, xq_subtransient_pu, \
+                 td0_subtransient_s, tq0_subtransient_s) or none",
+            );
+            None
+        }
+    };
     // Common practice (no single source): the reactances must fall from synchronous to
     // sub-transient and stay above leakage, or the machine equations lose meaning.
-    let order = [
+    let (lowest_d, lowest_q) = match subtransient {
+        Some(sub) => (
+            ("xd_subtransient_pu", sub.xd_pu),
+            ("xq_subtransient_pu", sub.xq_pu),
+        ),
+        None => (
+            ("xd_transient_pu", d.xd_transient_pu),
+            ("xq_transient_pu", d.xq_transient_pu),
+        ),
+    };
+    let mut order = vec![
         ("xd_pu", d.xd_pu, "xd_transient_pu", d.xd_transient_pu),
-        (
+        ("xq_pu", d.xq_pu, "xq_transient_pu", d.xq_transient_pu),
+    ];
+    if let Some(sub) = subtransient {
+        order.push((
             "xd_transient_pu",
             d.xd_transient_pu,
             "xd_subtransient_pu",
-            d.xd_subtransient_pu,
-        ),
-        ("xq_pu", d.xq_pu, "xq_transient_pu", d.xq_transient_pu),
-        (
+            sub.xd_pu,
+        ));
+        order.push((
             "xq_transient_pu",
             d.xq_transient_pu,
             "xq_subtransient_pu",
-            d.xq_subtransient_pu,
-        ),
-        ("xd_subtransient_pu", d.xd_subtransient_pu, "xl_pu", d.xl_pu),
-        ("xq_subtransient_pu", d.xq_subtransient_pu, "xl_pu", d.xl_pu),
-    ];
+            sub.xq_pu,
+        ));
+    }
+    order.push((lowest_d.0, lowest_d.1, "xl_pu", d.xl_pu));
+    order.push((lowest_q.0, lowest_q.1, "xl_pu", d.xl_pu));
     for (big, vb, small, vs) in order {
         if vs > vb {
             c.report(
@@ -1076,13 +1120,10 @@ fn machine_dynamics(c: &mut Checker<'_>, s: &Site, d: MachineDynamicsRecord) -> 
         xq_pu: d.xq_pu,
         xd_transient_pu: d.xd_transient_pu,
         xq_transient_pu: d.xq_transient_pu,
-        xd_subtransient_pu: d.xd_subtransient_pu,
-        xq_subtransient_pu: d.xq_subtransient_pu,
         xl_pu: d.xl_pu,
         td0_transient_s: d.td0_transient_s,
         tq0_transient_s: d.tq0_transient_s,
-        td0_subtransient_s: d.td0_subtransient_s,
-        tq0_subtransient_s: d.tq0_subtransient_s,
+        subtransient,
     }
 }
 
@@ -1207,13 +1248,13 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                     xq_pu: d.xq_pu,
                     xd_transient_pu: d.xd_transient_pu,
                     xq_transient_pu: d.xq_transient_pu,
-                    xd_subtransient_pu: d.xd_subtransient_pu,
-                    xq_subtransient_pu: d.xq_subtransient_pu,
+                    xd_subtransient_pu: d.subtransient.map(|x| x.xd_pu),
+                    xq_subtransient_pu: d.subtransient.map(|x| x.xq_pu),
                     xl_pu: d.xl_pu,
                     td0_transient_s: d.td0_transient_s,
                     tq0_transient_s: d.tq0_transient_s,
-                    td0_subtransient_s: d.td0_subtransient_s,
-                    tq0_subtransient_s: d.tq0_subtransient_s,
+                    td0_subtransient_s: d.subtransient.map(|x| x.td0_s),
+                    tq0_subtransient_s: d.subtransient.map(|x| x.tq0_s),
                 }),
             })
             .collect(),
