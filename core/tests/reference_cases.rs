@@ -172,16 +172,7 @@ fn wscc9_grid_text(reference: &toml::Value) -> String {
 fn wscc9_matches_published_power_flow() {
     // Anderson & Fouad Example 2.6 (Fig. 2.19); digits in the file agree with OpenIPSL to 6 places.
     // Tolerances from the file: 1e-4 pu and 1e-3 deg.
-    let text = std::fs::read_to_string(data("wscc9.toml")).unwrap();
-    let reference: toml::Value = toml::from_str(&text).unwrap();
-    let grid = format::parse_grid(
-        &wscc9_grid_text(&reference),
-        Path::new("wscc9-converted.toml"),
-    )
-    .unwrap();
-    let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
-        .converged()
-        .unwrap();
+    let (reference, grid, sol) = wscc9();
     let check = &reference["check"]["power_flow"];
     let numbers = |key: &str| -> Vec<f64> {
         check[key]
