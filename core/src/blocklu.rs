@@ -59,6 +59,7 @@ pub(crate) enum Slot {
 }
 
 /// Block LU factors with a fixed, pre-analysed structure.
+#[derive(Clone, Debug)]
 pub(crate) struct BlockLu {
     n: usize,
     /// `position[bus]`: elimination step of each bus.
@@ -164,6 +165,18 @@ impl BlockLu {
             Slot::Diag(k) => self.diag[k] = block,
             Slot::Upper(s) => self.upper[s] = block,
             Slot::Lower(s) => self.lower[s] = block,
+        }
+    }
+
+    /// Adds a block into its slot.
+    pub(crate) fn add(&mut self, slot: Slot, block: Block) {
+        let target = match slot {
+            Slot::Diag(k) => &mut self.diag[k],
+            Slot::Upper(s) => &mut self.upper[s],
+            Slot::Lower(s) => &mut self.lower[s],
+        };
+        for (t, b) in target.iter_mut().zip(block) {
+            *t += b;
         }
     }
 

@@ -346,7 +346,9 @@ fn build(
                 p_pu: card.pl / s_base,
                 q_pu: card.ql / s_base,
                 voltage_dependence: VoltageDependence::CONSTANT_POWER,
+                frequency_dependence: FrequencyDependence::default(),
                 motor_share: 0.0,
+                motor: MotorData::TYPICAL,
                 sheddable_fraction: 0.0,
                 priority: 0,
                 in_service: true,
@@ -404,6 +406,8 @@ fn build(
                 p_max_pu: f64::INFINITY,
                 rating_mva: s_base,
                 dynamics: None,
+                exciter: None,
+                governor: None,
                 in_service: true,
             });
         }

@@ -119,6 +119,10 @@ pub enum Error {
     /// A network matrix could not be factorised (e.g. an island left floating).
     #[error("singular matrix: {0}")]
     Singular(String),
+    /// A dynamic simulation cannot start: a model lacks data or cannot be initialised at the
+    /// given operating point, or a scenario asks for something impossible.
+    #[error("dynamic simulation: {0}")]
+    Dynamics(String),
     /// A grid could not be written out.
     #[error("cannot serialise grid: {0}")]
     Serialise(String),

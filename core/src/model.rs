@@ -275,8 +275,13 @@ pub struct Load {
     pub q_pu: f64,
     /// Voltage dependence of the static (non-motor) part.
     pub voltage_dependence: VoltageDependence,
+    /// Load change per unit frequency change (`P = P0 (1 + p Δf)`, `Q = Q0 (1 + q Δf)`, `Δf` in
+    /// pu of nominal) of the static part.
+    pub frequency_dependence: FrequencyDependence,
     /// Share of the active power drawn by induction motors, in `[0, 1]`. Dimensionless.
     pub motor_share: f64,
+    /// The induction-motor model of the motor share (typical data unless the file gives them).
+    pub motor: MotorData,
     /// Share of the load that may be shed, in `[0, 1]`. Dimensionless.
     pub sheddable_fraction: f64,
     /// Importance: 0 is the most sheddable; larger numbers are kept longer. Buses with critical
@@ -285,6 +290,154 @@ pub struct Load {
     /// In service in the base case.
     pub in_service: bool,
 }
+
+/// Sensitivity of a static load to frequency, pu load change per pu frequency change.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct FrequencyDependence {
+    /// Active power, pu/pu.
+    pub p_pu_per_pu: f64,
+    /// Reactive power, pu/pu.
+    pub q_pu_per_pu: f64,
+}
+
+/// An aggregate induction motor, per unit on its own rating (the motor share of the load
+/// divided by `loading_factor`), first-order (slip) model.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct MotorData {
+    /// Stator resistance, pu.
+    pub rs_pu: f64,
+    /// Stator leakage reactance, pu.
+    pub xs_pu: f64,
+    /// Magnetising reactance, pu.
+    pub xm_pu: f64,
+    /// Rotor resistance, pu.
+    pub rr_pu: f64,
+    /// Rotor leakage reactance, pu.
+    pub xr_pu: f64,
+    /// Inertia constant of motor and driven load, s.
+    pub h_s: f64,
+    /// Exponent `m` of the load torque `T0 (1 - s)^m` (0: constant torque, 2: fan or pump).
+    pub torque_exponent: f64,
+    /// Electrical input at the initial voltage as a share of the motor rating, pu.
+    pub loading_factor: f64,
+    /// Under-voltage trip of the motor share, if fitted.
+    pub under_voltage_trip: Option<UnderVoltageTrip>,
+}
+
+impl MotorData {
+    /// Typical data of an aggregate of small compressor-type motors: mid-range values of the
+    /// published ranges for residential and commercial motors (IEEE Task Force on Load
+    /// Representation for Dynamic Performance, 1993 and 1995; from memory), constant torque,
+    /// loaded to 75 % of rating, no trip.
+    pub const TYPICAL: MotorData = MotorData {
+        rs_pu: 0.04,
+        xs_pu: 0.1,
+        xm_pu: 3.0,
+        rr_pu: 0.04,
+        xr_pu: 0.1,
+        h_s: 0.3,
+        torque_exponent: 0.0,
+        loading_factor: 0.75,
+        under_voltage_trip: None,
+    };
+}
+
+/// A relay that trips a device when its voltage stays below a level for a time.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct UnderVoltageTrip {
+    /// Pick-up voltage, pu.
+    pub v_pu: f64,
+    /// Time below the pick-up voltage before the trip, s.
+    pub delay_s: f64,
+}
+
+/// Excitation system of a synchronous machine (block structures after IEEE Std 421.5; our own
+/// parameter names). Per unit of field voltage on the machine's air-gap-line base.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum ExciterData {
+    /// Bus-fed static exciter of the IEEE 421.5 ST1A type, simplified: voltage transducer, a
+    /// lead-lag (transient gain reduction) and a high-gain amplifier whose ceiling scales with
+    /// the terminal voltage.
+    St1a {
+        /// Voltage transducer time constant, s (0: none).
+        t_measure_s: f64,
+        /// Lead time constant, s.
+        t_lead_s: f64,
+        /// Lag time constant, s (0: no lead-lag stage).
+        t_lag_s: f64,
+        /// Amplifier gain, pu/pu.
+        gain: f64,
+        /// Amplifier time constant, s.
+        t_amplifier_s: f64,
+        /// Ceiling, pu of terminal voltage (output at most `v_t * field_max_pu`).
+        field_max_pu: f64,
+        /// Floor, pu of terminal voltage (output at least `v_t * field_min_pu`).
+        field_min_pu: f64,
+    },
+    /// A simple first-order exciter: gain and time constant with fixed output limits.
+    FirstOrder {
+        /// Voltage transducer time constant, s (0: none).
+        t_measure_s: f64,
+        /// Gain, pu/pu.
+        gain: f64,
+        /// Time constant, s.
+        t_s: f64,
+        /// Upper output limit, pu.
+        field_max_pu: f64,
+        /// Lower output limit, pu.
+        field_min_pu: f64,
+    },
+}
+
+/// Speed-droop turbine-governor: a valve lag with non-windup limits and an optional reheat
+/// lead-lag, on the machine rating.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct GovernorData {
+    /// Droop, pu speed per pu power.
+    pub droop_pu: f64,
+    /// Valve and steam-chest time constant, s.
+    pub t_valve_s: f64,
+    /// Reheater time constant, s (0: no reheat stage).
+    pub t_reheat_s: f64,
+    /// Share of power from the high-pressure stage (the lead of the reheat lead-lag), pu.
+    pub hp_fraction: f64,
+    /// Upper valve limit, pu of rating.
+    pub valve_max_pu: f64,
+    /// Lower valve limit, pu of rating.
+    pub valve_min_pu: f64,
+}
+
+/// One point of a low-voltage ride-through curve: the plant may trip once its voltage has
+/// stayed below `v_pu` for longer than `t_s`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct RideThroughPoint {
+    /// Voltage, pu.
+    pub v_pu: f64,
+    /// Longest time below that voltage without tripping, s.
+    pub t_s: f64,
+}
+
+/// The low-voltage no-trip envelope of NERC PRC-024-2 Attachment 2 (as tabulated in DOMAIN
+/// notes; verify against the edition in force): below 0.45 pu for 0.15 s, 0.65 pu for 0.3 s,
+/// 0.75 pu for 2 s and 0.9 pu for 3 s.
+pub const DEFAULT_RIDE_THROUGH: [RideThroughPoint; 4] = [
+    RideThroughPoint {
+        v_pu: 0.45,
+        t_s: 0.15,
+    },
+    RideThroughPoint {
+        v_pu: 0.65,
+        t_s: 0.30,
+    },
+    RideThroughPoint {
+        v_pu: 0.75,
+        t_s: 2.0,
+    },
+    RideThroughPoint {
+        v_pu: 0.90,
+        t_s: 3.0,
+    },
+];
 
 /// Dynamic data of a synchronous machine, per unit on the machine's own rating.
 ///
@@ -353,12 +506,16 @@ pub struct SyncMachine {
     pub rating_mva: f64,
     /// Dynamic data, if given.
     pub dynamics: Option<MachineDynamics>,
+    /// Excitation system, if modelled (else constant field voltage).
+    pub exciter: Option<ExciterData>,
+    /// Turbine-governor, if modelled (else constant mechanical power).
+    pub governor: Option<GovernorData>,
     /// In service in the base case.
     pub in_service: bool,
 }
 
 /// Dynamic data of a full-converter wind plant (aggregated), per unit on its rating.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct WindDynamics {
     /// Converter current limit, pu of rated current.
     pub i_max_pu: f64,
@@ -370,6 +527,8 @@ pub struct WindDynamics {
     pub t_current_s: f64,
     /// Active-current recovery rate after a fault, pu/s.
     pub p_recovery_pu_per_s: f64,
+    /// Low-voltage ride-through curve (see [`DEFAULT_RIDE_THROUGH`]); empty: never trips.
+    pub ride_through: Vec<RideThroughPoint>,
 }
 
 /// A full-converter wind plant (aggregated) at a bus. It injects fixed P and Q in the power flow.

@@ -92,6 +92,8 @@ pub fn meshed_grid(n_buses: usize, seed: u64) -> Grid {
                 p_max_pu: 5.0,
                 rating_mva: 400.0,
                 dynamics: None,
+                exciter: None,
+                governor: None,
                 in_service: true,
             });
         } else if rng.next_f64() < 0.8 {
@@ -103,7 +105,9 @@ pub fn meshed_grid(n_buses: usize, seed: u64) -> Grid {
                 p_pu: p,
                 q_pu: p * 0.33,
                 voltage_dependence: VoltageDependence::CONSTANT_POWER,
+                frequency_dependence: FrequencyDependence::default(),
                 motor_share: 0.0,
+                motor: MotorData::TYPICAL,
                 sheddable_fraction: 0.0,
                 priority: 0,
                 in_service: true,

@@ -2,16 +2,13 @@
 
 #![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test helpers, where a panic is the failure report
 
-use std::path::{Path, PathBuf};
+mod common;
+use common::{data, wscc9};
+
+use std::path::Path;
 
 use holdfast_core::powerflow::{PowerFlowOptions, QLimit, solve};
 use holdfast_core::{BusIdx, Outages, cdf, format};
-
-fn data(name: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("../tests/data")
-        .join(name)
-}
 
 /// Imports a solved CDF case, solves it, and compares every bus with the file's solution.
 fn check_cdf_case(
@@ -91,81 +88,6 @@ fn ieee30_matches_published_solution_with_bus2_at_its_limit() {
         .unwrap();
     let p_swing_mw = sol.machine_p_pu[swing] * grid.s_base_mva;
     assert!((p_swing_mw - 260.2).abs() < 1.0, "swing P {p_swing_mw} MW");
-}
-
-/// Converts the WSCC 9-bus reference file (its own layout) into our grid-file text.
-fn wscc9_grid_text(reference: &toml::Value) -> String {
-    let mut out = String::from(
-        "format_version = 1\nname = \"WSCC 9-bus\"\ns_base_mva = 100.0\nfrequency_hz = 60.0\n",
-    );
-    for bus in reference["bus"].as_array().unwrap() {
-        let id = bus["id"].as_integer().unwrap();
-        out += &format!(
-            "[[bus]]\nid = {id}\nbase_kv = {}\n",
-            bus["base_kv"].as_float().unwrap()
-        );
-        if bus["kind"].as_str() == Some("slack") {
-            out += "reference = true\n";
-        }
-    }
-    for (k, line) in reference["line"].as_array().unwrap().iter().enumerate() {
-        out += &format!(
-            "[[line]]\nid = \"L{k}\"\nfrom = {}\nto = {}\nr_pu = {}\nx_pu = {}\nb_pu = {}\n",
-            line["from"], line["to"], line["r"], line["x"], line["b_total"]
-        );
-    }
-    for (k, t) in reference["transformer"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .enumerate()
-    {
-        out += &format!(
-            "[[transformer]]\nid = \"T{k}\"\nfrom = {}\nto = {}\nx_pu = {}\n",
-            t["from"], t["to"], t["x"]
-        );
-    }
-    for (k, l) in reference["load"].as_array().unwrap().iter().enumerate() {
-        out += &format!(
-            "[[load]]\nid = \"D{k}\"\nbus = {}\np_mw = {}\nq_mvar = {}\n",
-            l["bus"], l["p_mw"], l["q_mvar"]
-        );
-    }
-    let buses = reference["bus"].as_array().unwrap();
-    for g in reference["generator"].as_array().unwrap() {
-        let bus = g["bus"].as_integer().unwrap();
-        let v_set = buses
-            .iter()
-            .find(|b| b["id"].as_integer() == Some(bus))
-            .unwrap()["v_set"]
-            .as_float()
-            .unwrap();
-        out += &format!(
-            "[[machine]]\nid = \"G{bus}\"\nbus = {bus}\np_mw = {}\nv_set_pu = {v_set}\nrating_mva = 100.0\n",
-            g["p_mw"]
-        );
-        // Machine data of Table 2.1 are on the 100 MVA system base, hence rating_mva = 100.
-        let m = reference["machine"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .find(|m| m["bus"].as_integer() == Some(bus))
-            .unwrap();
-        out += &format!(
-            "[machine.dynamics]\nh_s = {}\ndamping_pu = {}\nxd_pu = {}\nxq_pu = {}\nxd_transient_pu = {}\n\
-             xq_transient_pu = {}\nxl_pu = {}\ntd0_transient_s = {}\ntq0_transient_s = {}\n",
-            m["h_s"],
-            m["damping"],
-            m["xd"],
-            m["xq"],
-            m["xd_prime"],
-            m["xq_prime"],
-            m["xl"],
-            m["td0_prime_s"],
-            m["tq0_prime_s"]
-        );
-    }
-    out
 }
 
 #[test]
@@ -447,25 +369,6 @@ fn an_unfinished_limit_round_is_reported_not_hidden() {
         .converged()
         .unwrap();
     assert!(sol.q_limits_settled);
-}
-
-/// The WSCC 9-bus grid, its reference file and its solved power flow.
-fn wscc9() -> (
-    toml::Value,
-    holdfast_core::Grid,
-    holdfast_core::powerflow::PowerFlowSolution,
-) {
-    let text = std::fs::read_to_string(data("wscc9.toml")).unwrap();
-    let reference: toml::Value = toml::from_str(&text).unwrap();
-    let grid = format::parse_grid(
-        &wscc9_grid_text(&reference),
-        Path::new("wscc9-converted.toml"),
-    )
-    .unwrap();
-    let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
-        .converged()
-        .unwrap();
-    (reference, grid, sol)
 }
 
 fn floats(v: &toml::Value) -> Vec<f64> {

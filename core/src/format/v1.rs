@@ -213,7 +213,13 @@ struct LoadRecord {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     voltage_dependence: Option<VoltageDependenceRecord>,
     #[serde(default, skip_serializing_if = "is_zero")]
+    p_per_frequency_pu: f64,
+    #[serde(default, skip_serializing_if = "is_zero")]
+    q_per_frequency_pu: f64,
+    #[serde(default, skip_serializing_if = "is_zero")]
     motor_share: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    motor: Option<MotorRecord>,
     #[serde(default, skip_serializing_if = "is_zero")]
     sheddable_fraction: f64,
     #[serde(default, skip_serializing_if = "is_zero_u32")]
@@ -224,6 +230,75 @@ struct LoadRecord {
 
 fn is_zero_u32(x: &u32) -> bool {
     *x == 0
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(deny_unknown_fields)]
+struct UnderVoltageTripRecord {
+    v_pu: f64,
+    delay_s: f64,
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(deny_unknown_fields)]
+struct MotorRecord {
+    rs_pu: f64,
+    xs_pu: f64,
+    xm_pu: f64,
+    rr_pu: f64,
+    xr_pu: f64,
+    h_s: f64,
+    #[serde(default)]
+    torque_exponent: f64,
+    loading_factor: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    under_voltage_trip: Option<UnderVoltageTripRecord>,
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+enum ExciterRecord {
+    St1a {
+        #[serde(default)]
+        t_measure_s: f64,
+        #[serde(default)]
+        t_lead_s: f64,
+        #[serde(default)]
+        t_lag_s: f64,
+        gain: f64,
+        t_amplifier_s: f64,
+        field_max_pu: f64,
+        field_min_pu: f64,
+    },
+    FirstOrder {
+        #[serde(default)]
+        t_measure_s: f64,
+        gain: f64,
+        t_s: f64,
+        field_max_pu: f64,
+        field_min_pu: f64,
+    },
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(deny_unknown_fields)]
+struct GovernorRecord {
+    droop_pu: f64,
+    t_valve_s: f64,
+    #[serde(default)]
+    t_reheat_s: f64,
+    #[serde(default)]
+    hp_fraction: f64,
+    valve_max_pu: f64,
+    #[serde(default)]
+    valve_min_pu: f64,
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(deny_unknown_fields)]
+struct RideThroughRecord {
+    v_pu: f64,
+    t_s: f64,
 }
 
 #[derive(Serialize, Deserialize, Clone, Copy)]
@@ -275,9 +350,13 @@ struct MachineRecord {
     in_service: bool,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     dynamics: Option<MachineDynamicsRecord>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    exciter: Option<ExciterRecord>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    governor: Option<GovernorRecord>,
 }
 
-#[derive(Serialize, Deserialize, Clone, Copy)]
+#[derive(Serialize, Deserialize, Clone)]
 #[serde(deny_unknown_fields)]
 struct WindDynamicsRecord {
     i_max_pu: f64,
@@ -285,6 +364,8 @@ struct WindDynamicsRecord {
     v_dip_pu: f64,
     t_current_s: f64,
     p_recovery_pu_per_s: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    ride_through: Option<Vec<RideThroughRecord>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -693,13 +774,23 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
                 }
             }
         };
+        c.number(&s, "p_per_frequency_pu", l.p_per_frequency_pu, -10.0, 10.0);
+        c.number(&s, "q_per_frequency_pu", l.q_per_frequency_pu, -10.0, 10.0);
+        let motor = l
+            .motor
+            .map_or(MotorData::TYPICAL, |m| motor_data(&mut c, &s, m));
         loads.push(Load {
             id: l.id.clone(),
             bus,
             p_pu: l.p_mw / s_base,
             q_pu: l.q_mvar / s_base,
             voltage_dependence,
+            frequency_dependence: FrequencyDependence {
+                p_pu_per_pu: l.p_per_frequency_pu,
+                q_pu_per_pu: l.q_per_frequency_pu,
+            },
             motor_share: l.motor_share,
+            motor,
             sheddable_fraction: l.sheddable_fraction,
             priority: l.priority,
             in_service: l.in_service,
@@ -754,6 +845,14 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             );
         }
         let dynamics = m.dynamics.map(|d| machine_dynamics(&mut c, &s, d));
+        let exciter = m.exciter.map(|e| exciter_data(&mut c, &s, e));
+        let governor = m.governor.map(|g| governor_data(&mut c, &s, g));
+        if dynamics.is_none() && (exciter.is_some() || governor.is_some()) {
+            c.report_record(
+                &s,
+                "an exciter or governor needs the machine's [machine.dynamics] data",
+            );
+        }
         machines.push(SyncMachine {
             id: m.id.clone(),
             bus,
@@ -766,6 +865,8 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             p_max_pu: p_max.map_or(f64::INFINITY, |p| p / s_base),
             rating_mva,
             dynamics,
+            exciter,
+            governor,
             in_service: m.in_service,
         });
         machine_sites.push(s);
@@ -782,7 +883,7 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
         let rating = c.positive(&s, "rating_mw", w.rating_mw, limit);
         c.number(&s, "p_mw", w.p_mw, 0.0, rating.max(0.0) * 1.0001);
         c.number(&s, "q_mvar", w.q_mvar, -limit, limit);
-        let dynamics = w.dynamics.map(|d| {
+        let dynamics = w.dynamics.as_ref().map(|d| {
             c.number(&s, "dynamics.i_max_pu", d.i_max_pu, 0.5, 3.0);
             c.number(
                 &s,
@@ -800,12 +901,17 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
                 0.01,
                 1000.0,
             );
+            let ride_through = match &d.ride_through {
+                None => DEFAULT_RIDE_THROUGH.to_vec(),
+                Some(points) => ride_through(&mut c, &s, points),
+            };
             WindDynamics {
                 i_max_pu: d.i_max_pu,
                 k_reactive_current: d.k_reactive_current,
                 v_dip_pu: d.v_dip_pu,
                 t_current_s: d.t_current_s,
                 p_recovery_pu_per_s: d.p_recovery_pu_per_s,
+                ride_through,
             }
         });
         wind_plants.push(WindPlant {
@@ -1127,6 +1233,134 @@ fn machine_dynamics(c: &mut Checker<'_>, s: &Site, d: MachineDynamicsRecord) -> 
     }
 }
 
+fn motor_data(c: &mut Checker<'_>, s: &Site, m: MotorRecord) -> MotorData {
+    for (name, v) in [
+        ("rs_pu", m.rs_pu),
+        ("xs_pu", m.xs_pu),
+        ("rr_pu", m.rr_pu),
+        ("xr_pu", m.xr_pu),
+    ] {
+        c.positive(s, &format!("motor.{name}"), v, 1.0);
+    }
+    c.positive(s, "motor.xm_pu", m.xm_pu, 20.0);
+    c.positive(s, "motor.h_s", m.h_s, 10.0);
+    c.number(s, "motor.torque_exponent", m.torque_exponent, 0.0, 3.0);
+    c.number(s, "motor.loading_factor", m.loading_factor, 0.1, 1.0);
+    let under_voltage_trip = m.under_voltage_trip.map(|t| {
+        c.number(s, "motor.under_voltage_trip.v_pu", t.v_pu, 0.0, 1.0);
+        c.number(s, "motor.under_voltage_trip.delay_s", t.delay_s, 0.0, 100.0);
+        UnderVoltageTrip {
+            v_pu: t.v_pu,
+            delay_s: t.delay_s,
+        }
+    });
+    MotorData {
+        rs_pu: m.rs_pu,
+        xs_pu: m.xs_pu,
+        xm_pu: m.xm_pu,
+        rr_pu: m.rr_pu,
+        xr_pu: m.xr_pu,
+        h_s: m.h_s,
+        torque_exponent: m.torque_exponent,
+        loading_factor: m.loading_factor,
+        under_voltage_trip,
+    }
+}
+
+fn exciter_data(c: &mut Checker<'_>, s: &Site, e: ExciterRecord) -> ExciterData {
+    // Ranges: generous bounds around the typical values of IEEE Std 421.5 sample data (from
+    // memory); they catch unit mistakes, not unusual designs.
+    match e {
+        ExciterRecord::St1a {
+            t_measure_s,
+            t_lead_s,
+            t_lag_s,
+            gain,
+            t_amplifier_s,
+            field_max_pu,
+            field_min_pu,
+        } => {
+            c.number(s, "exciter.t_measure_s", t_measure_s, 0.0, 1.0);
+            c.number(s, "exciter.t_lead_s", t_lead_s, 0.0, 100.0);
+            c.number(s, "exciter.t_lag_s", t_lag_s, 0.0, 100.0);
+            c.positive(s, "exciter.gain", gain, 10_000.0);
+            c.number(s, "exciter.t_amplifier_s", t_amplifier_s, 1e-3, 10.0);
+            c.number(s, "exciter.field_max_pu", field_max_pu, 0.0, 20.0);
+            c.number(s, "exciter.field_min_pu", field_min_pu, -20.0, field_max_pu);
+            ExciterData::St1a {
+                t_measure_s,
+                t_lead_s,
+                t_lag_s,
+                gain,
+                t_amplifier_s,
+                field_max_pu,
+                field_min_pu,
+            }
+        }
+        ExciterRecord::FirstOrder {
+            t_measure_s,
+            gain,
+            t_s,
+            field_max_pu,
+            field_min_pu,
+        } => {
+            c.number(s, "exciter.t_measure_s", t_measure_s, 0.0, 1.0);
+            c.positive(s, "exciter.gain", gain, 10_000.0);
+            c.number(s, "exciter.t_s", t_s, 1e-3, 10.0);
+            c.number(s, "exciter.field_max_pu", field_max_pu, 0.0, 20.0);
+            c.number(s, "exciter.field_min_pu", field_min_pu, -20.0, field_max_pu);
+            ExciterData::FirstOrder {
+                t_measure_s,
+                gain,
+                t_s,
+                field_max_pu,
+                field_min_pu,
+            }
+        }
+    }
+}
+
+fn governor_data(c: &mut Checker<'_>, s: &Site, g: GovernorRecord) -> GovernorData {
+    c.number(s, "governor.droop_pu", g.droop_pu, 0.01, 0.5);
+    c.number(s, "governor.t_valve_s", g.t_valve_s, 1e-3, 10.0);
+    c.number(s, "governor.t_reheat_s", g.t_reheat_s, 0.0, 50.0);
+    c.number(s, "governor.hp_fraction", g.hp_fraction, 0.0, 1.0);
+    c.number(s, "governor.valve_max_pu", g.valve_max_pu, 0.0, 2.0);
+    c.number(
+        s,
+        "governor.valve_min_pu",
+        g.valve_min_pu,
+        -1.0,
+        g.valve_max_pu,
+    );
+    GovernorData {
+        droop_pu: g.droop_pu,
+        t_valve_s: g.t_valve_s,
+        t_reheat_s: g.t_reheat_s,
+        hp_fraction: g.hp_fraction,
+        valve_max_pu: g.valve_max_pu,
+        valve_min_pu: g.valve_min_pu,
+    }
+}
+
+fn ride_through(
+    c: &mut Checker<'_>,
+    s: &Site,
+    points: &[RideThroughRecord],
+) -> Vec<RideThroughPoint> {
+    points
+        .iter()
+        .map(|p| {
+            c.number(s, "dynamics.ride_through.v_pu", p.v_pu, 0.0, 1.0);
+            c.number(s, "dynamics.ride_through.t_s", p.t_s, 0.0, 1000.0);
+            RideThroughPoint {
+                v_pu: p.v_pu,
+                t_s: p.t_s,
+            }
+        })
+        .collect()
+}
+
 fn finite_or_none(x: f64, scale: f64) -> Option<f64> {
     x.is_finite().then_some(x * scale)
 }
@@ -1219,7 +1453,25 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                         q_i: l.voltage_dependence.q_i,
                         q_p: l.voltage_dependence.q_p,
                     }),
+                p_per_frequency_pu: l.frequency_dependence.p_pu_per_pu,
+                q_per_frequency_pu: l.frequency_dependence.q_pu_per_pu,
                 motor_share: l.motor_share,
+                motor: (l.motor != MotorData::TYPICAL).then(|| MotorRecord {
+                    rs_pu: l.motor.rs_pu,
+                    xs_pu: l.motor.xs_pu,
+                    xm_pu: l.motor.xm_pu,
+                    rr_pu: l.motor.rr_pu,
+                    xr_pu: l.motor.xr_pu,
+                    h_s: l.motor.h_s,
+                    torque_exponent: l.motor.torque_exponent,
+                    loading_factor: l.motor.loading_factor,
+                    under_voltage_trip: l.motor.under_voltage_trip.map(|t| {
+                        UnderVoltageTripRecord {
+                            v_pu: t.v_pu,
+                            delay_s: t.delay_s,
+                        }
+                    }),
+                }),
                 sheddable_fraction: l.sheddable_fraction,
                 priority: l.priority,
                 in_service: l.in_service,
@@ -1256,6 +1508,46 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                     td0_subtransient_s: d.subtransient.map(|x| x.td0_s),
                     tq0_subtransient_s: d.subtransient.map(|x| x.tq0_s),
                 }),
+                exciter: m.exciter.map(|e| match e {
+                    ExciterData::St1a {
+                        t_measure_s,
+                        t_lead_s,
+                        t_lag_s,
+                        gain,
+                        t_amplifier_s,
+                        field_max_pu,
+                        field_min_pu,
+                    } => ExciterRecord::St1a {
+                        t_measure_s,
+                        t_lead_s,
+                        t_lag_s,
+                        gain,
+                        t_amplifier_s,
+                        field_max_pu,
+                        field_min_pu,
+                    },
+                    ExciterData::FirstOrder {
+                        t_measure_s,
+                        gain,
+                        t_s,
+                        field_max_pu,
+                        field_min_pu,
+                    } => ExciterRecord::FirstOrder {
+                        t_measure_s,
+                        gain,
+                        t_s,
+                        field_max_pu,
+                        field_min_pu,
+                    },
+                }),
+                governor: m.governor.map(|g| GovernorRecord {
+                    droop_pu: g.droop_pu,
+                    t_valve_s: g.t_valve_s,
+                    t_reheat_s: g.t_reheat_s,
+                    hp_fraction: g.hp_fraction,
+                    valve_max_pu: g.valve_max_pu,
+                    valve_min_pu: g.valve_min_pu,
+                }),
             })
             .collect(),
         wind: grid
@@ -1268,12 +1560,21 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                 p_mw: w.p_pu * s,
                 q_mvar: w.q_pu * s,
                 in_service: w.in_service,
-                dynamics: w.dynamics.map(|d| WindDynamicsRecord {
+                dynamics: w.dynamics.as_ref().map(|d| WindDynamicsRecord {
                     i_max_pu: d.i_max_pu,
                     k_reactive_current: d.k_reactive_current,
                     v_dip_pu: d.v_dip_pu,
                     t_current_s: d.t_current_s,
                     p_recovery_pu_per_s: d.p_recovery_pu_per_s,
+                    ride_through: (d.ride_through != DEFAULT_RIDE_THROUGH).then(|| {
+                        d.ride_through
+                            .iter()
+                            .map(|p| RideThroughRecord {
+                                v_pu: p.v_pu,
+                                t_s: p.t_s,
+                            })
+                            .collect()
+                    }),
                 }),
             })
             .collect(),

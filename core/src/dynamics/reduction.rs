@@ -1,10 +1,6 @@
-//! The first pieces of the dynamic engine: machine initial conditions from a power flow, loads as
-//! constant admittances, and reduction of the network to the machines' internal nodes.
-//!
-//! These serve the classical (constant voltage behind transient reactance) model and the checks
-//! against published transient-stability examples; the time-domain integrator builds on them.
-//! All quantities are per unit on the system base; machine data are converted from each
-//! machine's own rating here.
+//! Classical-model initial conditions, loads as constant admittances, and reduction of the
+//! network to the machines' internal nodes: the textbook route to transient stability, kept for
+//! checks against published examples (the time-domain engine works on the full network).
 
 use faer::Mat;
 use faer::prelude::Solve;

@@ -1,0 +1,349 @@
+//! Events of a dynamic scenario and their two text forms: a TOML scenario file and one-line
+//! event strings for the command line (both our own syntax, documented in `scenarios/README.md`).
+
+use std::path::Path;
+
+use serde::Deserialize;
+use toml::Spanned;
+
+use crate::model::{BranchIdx, BusIdx, Grid, MachineIdx, WindIdx};
+use crate::{Error, Problem};
+
+/// Default fault reactance of a "bolted" fault, pu: small but never zero (common practice,
+/// DOMAIN.md 6.5).
+pub const BOLTED_FAULT_X_PU: f64 = 1e-4;
+
+/// Something that happens to the grid at an instant.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Event {
+    /// A three-phase fault to ground at a bus through `r_pu + j x_pu`.
+    Fault {
+        /// Faulted bus.
+        bus: BusIdx,
+        /// Fault resistance, pu.
+        r_pu: f64,
+        /// Fault reactance, pu.
+        x_pu: f64,
+    },
+    /// The fault at a bus is removed.
+    ClearFault {
+        /// The bus.
+        bus: BusIdx,
+    },
+    /// A branch opens at both ends.
+    TripBranch(BranchIdx),
+    /// A synchronous machine is disconnected.
+    TripMachine(MachineIdx),
+    /// A wind plant is disconnected.
+    TripWind(WindIdx),
+    /// Demand at a bus changes by `p_pu` (positive: more load), the loads there scaled
+    /// together with their reactive power.
+    LoadStep {
+        /// The bus.
+        bus: BusIdx,
+        /// Change of active demand at the initial voltage, pu.
+        p_pu: f64,
+    },
+    /// Load shedding: `p_pu` of demand is removed at a bus, with proportional reactive power.
+    Shed {
+        /// The bus.
+        bus: BusIdx,
+        /// Active power removed, at the initial voltage, pu.
+        p_pu: f64,
+    },
+}
+
+/// An event at a time.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TimedEvent {
+    /// Time from the start of the run, s.
+    pub t_s: f64,
+    /// What happens.
+    pub event: Event,
+}
+
+/// A named list of timed events.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Scenario {
+    /// Descriptive name.
+    pub name: String,
+    /// The events, in any order (the engine sorts them by time, keeping ties in order).
+    pub events: Vec<TimedEvent>,
+}
+
+impl Scenario {
+    /// Time of the last fault clearing, if the scenario clears a fault.
+    pub fn last_clearing_s(&self) -> Option<f64> {
+        self.events
+            .iter()
+            .filter(|e| matches!(e.event, Event::ClearFault { .. }))
+            .map(|e| e.t_s)
+            .reduce(f64::max)
+    }
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct FileIn {
+    #[serde(default)]
+    name: String,
+    #[serde(default)]
+    event: Vec<Spanned<EventRecord>>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct EventRecord {
+    at_s: f64,
+    action: String,
+    #[serde(default)]
+    bus: Option<u32>,
+    #[serde(default)]
+    id: Option<String>,
+    #[serde(default)]
+    mw: Option<f64>,
+    #[serde(default)]
+    r_pu: Option<f64>,
+    #[serde(default)]
+    x_pu: Option<f64>,
+}
+
+/// The actions a scenario may name.
+pub const ACTIONS: [&str; 5] = ["fault", "clear_fault", "trip", "shed", "load_step"];
+
+/// Reads a scenario file.
+pub fn read_scenario(path: &Path, grid: &Grid) -> Result<Scenario, Error> {
+    let text = std::fs::read_to_string(path).map_err(|source| Error::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    parse_scenario(&text, path, grid)
+}
+
+/// Parses a scenario from TOML text (`path` names it in messages).
+pub fn parse_scenario(text: &str, path: &Path, grid: &Grid) -> Result<Scenario, Error> {
+    let file: FileIn = toml::from_str(text).map_err(|e| {
+        let (line, column) = e.span().map(|s| line_col(text, s.start)).unwrap_or((1, 1));
+        Error::Syntax {
+            path: path.to_path_buf(),
+            line,
+            column,
+            message: e.message().to_string(),
+        }
+    })?;
+    let mut problems = Vec::new();
+    let mut events = Vec::new();
+    for rec in &file.event {
+        let line = line_col(text, rec.span().start).0;
+        let r = rec.get_ref();
+        let record = format!("event at {} s", r.at_s);
+        let problem = |field: &str, value: &dyn std::fmt::Display, message: &str| {
+            Problem::new(Some(line), record.clone(), message).field(field, value)
+        };
+        if !(r.at_s.is_finite() && r.at_s >= 0.0) {
+            problems.push(problem("at_s", &r.at_s, "must be a time >= 0 s"));
+            continue;
+        }
+        let bus = |problems: &mut Vec<Problem>| -> Option<BusIdx> {
+            match r.bus {
+                None => {
+                    problems.push(Problem::new(
+                        Some(line),
+                        record.clone(),
+                        format!("action \"{}\" needs `bus`", r.action),
+                    ));
+                    None
+                }
+                Some(n) => grid.bus_idx(n).or_else(|| {
+                    problems.push(problem("bus", &n, "no bus has this number"));
+                    None
+                }),
+            }
+        };
+        let mw = |problems: &mut Vec<Problem>| -> Option<f64> {
+            match r.mw {
+                Some(v) if v.is_finite() => Some(v / grid.s_base_mva),
+                Some(v) => {
+                    problems.push(problem("mw", &v, "must be a finite number"));
+                    None
+                }
+                None => {
+                    problems.push(Problem::new(
+                        Some(line),
+                        record.clone(),
+                        format!("action \"{}\" needs `mw`", r.action),
+                    ));
+                    None
+                }
+            }
+        };
+        let event = match r.action.as_str() {
+            "fault" => {
+                let (rf, xf) = (r.r_pu.unwrap_or(0.0), r.x_pu.unwrap_or(BOLTED_FAULT_X_PU));
+                if !(rf >= 0.0 && xf >= 0.0 && rf + xf > 0.0 && (rf + xf).is_finite()) {
+                    problems.push(problem(
+                        "x_pu",
+                        &format!("{xf} (r_pu = {rf})"),
+                        "fault impedance must be finite, non-negative and not zero",
+                    ));
+                    None
+                } else {
+                    bus(&mut problems).map(|bus| Event::Fault {
+                        bus,
+                        r_pu: rf,
+                        x_pu: xf,
+                    })
+                }
+            }
+            "clear_fault" => bus(&mut problems).map(|bus| Event::ClearFault { bus }),
+            "trip" => match &r.id {
+                None => {
+                    problems.push(Problem::new(
+                        Some(line),
+                        record.clone(),
+                        "action \"trip\" needs `id`",
+                    ));
+                    None
+                }
+                Some(id) => match trip_event(grid, id) {
+                    Some(e) => Some(e),
+                    None => {
+                        problems.push(problem(
+                            "id",
+                            &format!("\"{id}\""),
+                            "no branch, machine or wind plant has this id",
+                        ));
+                        None
+                    }
+                },
+            },
+            "shed" | "load_step" => {
+                let (b, p) = (bus(&mut problems), mw(&mut problems));
+                match (b, p) {
+                    (Some(bus), Some(p_pu)) if r.action == "shed" => {
+                        if p_pu < 0.0 {
+                            problems.push(problem("mw", &r.mw.unwrap_or(0.0), "must be >= 0"));
+                            None
+                        } else {
+                            Some(Event::Shed { bus, p_pu })
+                        }
+                    }
+                    (Some(bus), Some(p_pu)) => Some(Event::LoadStep { bus, p_pu }),
+                    _ => None,
+                }
+            }
+            other => {
+                problems.push(problem(
+                    "action",
+                    &format!("\"{other}\""),
+                    &format!("unknown action; use one of {}", ACTIONS.join(", ")),
+                ));
+                None
+            }
+        };
+        if let Some(event) = event {
+            events.push(TimedEvent { t_s: r.at_s, event });
+        }
+    }
+    if problems.is_empty() {
+        Ok(Scenario {
+            name: file.name,
+            events,
+        })
+    } else {
+        Err(Error::Invalid {
+            path: path.to_path_buf(),
+            problems,
+        })
+    }
+}
+
+fn trip_event(grid: &Grid, id: &str) -> Option<Event> {
+    if let Some(k) = grid.branches.iter().position(|b| b.id == id) {
+        Some(Event::TripBranch(BranchIdx(k as u32)))
+    } else if let Some(k) = grid.machines.iter().position(|m| m.id == id) {
+        Some(Event::TripMachine(MachineIdx(k as u32)))
+    } else {
+        grid.wind_plants
+            .iter()
+            .position(|w| w.id == id)
+            .map(|k| Event::TripWind(WindIdx(k as u32)))
+    }
+}
+
+/// Parses a one-line event: `TIME ACTION ARGS`, with actions
+/// `fault BUS [x=X_PU] [r=R_PU]`, `clear BUS`, `trip ID`, `shed BUS MW`, `load BUS MW`.
+/// Errors name the offending word.
+pub fn parse_event_line(grid: &Grid, line: &str) -> Result<TimedEvent, String> {
+    let words: Vec<&str> = line.split_whitespace().collect();
+    let usage = "expected `TIME fault BUS [x=X_PU] [r=R_PU]`, `TIME clear BUS`, `TIME trip ID`, \
+                 `TIME shed BUS MW` or `TIME load BUS MW`";
+    if words.len() < 3 {
+        return Err(format!("event \"{line}\": {usage}"));
+    }
+    let number = |w: &str, what: &str| -> Result<f64, String> {
+        w.parse::<f64>()
+            .ok()
+            .filter(|v| v.is_finite())
+            .ok_or_else(|| format!("event \"{line}\": {what} \"{w}\" is not a number"))
+    };
+    let bus = |w: &str| -> Result<BusIdx, String> {
+        w.parse::<u32>()
+            .ok()
+            .and_then(|n| grid.bus_idx(n))
+            .ok_or_else(|| format!("event \"{line}\": no bus has the number \"{w}\""))
+    };
+    let t_s = number(words[0], "time")?;
+    if t_s < 0.0 {
+        return Err(format!("event \"{line}\": time must be >= 0 s"));
+    }
+    let event = match (words[1], &words[2..]) {
+        ("fault", [b, opts @ ..]) => {
+            let (mut r_pu, mut x_pu) = (0.0, BOLTED_FAULT_X_PU);
+            for o in opts {
+                match o.split_once('=') {
+                    Some(("x", v)) => x_pu = number(v, "fault reactance")?,
+                    Some(("r", v)) => r_pu = number(v, "fault resistance")?,
+                    _ => return Err(format!("event \"{line}\": unknown fault option \"{o}\"")),
+                }
+            }
+            if !(r_pu >= 0.0 && x_pu >= 0.0 && r_pu + x_pu > 0.0) {
+                return Err(format!(
+                    "event \"{line}\": fault impedance must be non-negative and not zero"
+                ));
+            }
+            Event::Fault {
+                bus: bus(b)?,
+                r_pu,
+                x_pu,
+            }
+        }
+        ("clear", [b]) => Event::ClearFault { bus: bus(b)? },
+        ("trip", [id]) => trip_event(grid, id).ok_or_else(|| {
+            format!("event \"{line}\": no branch, machine or wind plant has the id \"{id}\"")
+        })?,
+        ("shed", [b, mw]) => {
+            let p = number(mw, "amount")?;
+            if p < 0.0 {
+                return Err(format!("event \"{line}\": shed amount must be >= 0 MW"));
+            }
+            Event::Shed {
+                bus: bus(b)?,
+                p_pu: p / grid.s_base_mva,
+            }
+        }
+        ("load", [b, mw]) => Event::LoadStep {
+            bus: bus(b)?,
+            p_pu: number(mw, "amount")? / grid.s_base_mva,
+        },
+        _ => return Err(format!("event \"{line}\": {usage}")),
+    };
+    Ok(TimedEvent { t_s, event })
+}
+
+fn line_col(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text[..offset.min(text.len())];
+    let line = before.matches('\n').count() + 1;
+    let column = before.len() - before.rfind('\n').map_or(0, |p| p + 1) + 1;
+    (line, column)
+}

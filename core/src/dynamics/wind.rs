@@ -1,0 +1,131 @@
+//! A full-converter wind plant as a controlled current source (DOMAIN.md 5.2, our own generic
+//! formulation): measured voltage, active and reactive current lags, a current limit with
+//! reactive priority during voltage dips, reactive current injection in proportion to the dip,
+//! a ramp limit on active-current recovery, and a low-voltage ride-through monitor that trips
+//! the plant. No inertia; the phase-locked loop is ideal (the current follows the terminal
+//! voltage angle), so weak-grid converter instability is out of reach of this model.
+
+use crate::Complex;
+use crate::model::{RideThroughPoint, WindDynamics};
+
+/// Voltage measurement time constant, s (common practice, DOMAIN.md 5.2).
+const T_MEASURE_S: f64 = 0.02;
+/// Below this terminal voltage the current's angle reference is held in proportion to the
+/// voltage itself, so the injection stays smooth through a bolted fault.
+const V_ANGLE_FLOOR_PU: f64 = 0.05;
+/// Smallest measured voltage used to turn power orders into current orders, pu.
+const V_ORDER_FLOOR_PU: f64 = 0.01;
+
+/// A wind plant device, currents in pu of the plant's rating.
+#[derive(Clone, Debug)]
+pub(crate) struct WindDevice {
+    data: WindDynamics,
+    /// Plant rating, system pu (converts plant-pu currents to system pu).
+    rating: f64,
+    p_ref: f64,
+    q_ref: f64,
+    iq0: f64,
+    /// In fault mode (measured voltage below the dip threshold) at the last step boundary.
+    fault_mode: bool,
+    pub(crate) tripped: bool,
+    /// Time each ride-through level was first undershot in the current excursion (NaN: above).
+    below_since_s: Vec<f64>,
+}
+
+impl WindDevice {
+    /// Builds the device at output `s` (system pu) and terminal voltage `v`; returns its
+    /// states `[v_measured, i_active, i_reactive]`.
+    pub(crate) fn new(
+        data: &WindDynamics,
+        rating: f64,
+        v: Complex,
+        s: Complex,
+    ) -> (WindDevice, Vec<f64>) {
+        let v0 = v.norm();
+        let (p, q) = (s.re / rating, s.im / rating);
+        let dev = WindDevice {
+            data: data.clone(),
+            rating,
+            p_ref: p,
+            q_ref: q,
+            iq0: q / v0.max(V_ORDER_FLOOR_PU),
+            fault_mode: false,
+            tripped: false,
+            below_since_s: vec![f64::NAN; data.ride_through.len()],
+        };
+        let x = vec![
+            v0,
+            p / v0.max(V_ORDER_FLOOR_PU),
+            q / v0.max(V_ORDER_FLOOR_PU),
+        ];
+        (dev, x)
+    }
+
+    /// Current orders `(ip, iq)` at measured voltage `vm`, limits applied.
+    fn orders(&self, vm: f64) -> (f64, f64) {
+        let d = &self.data;
+        let vm = vm.max(V_ORDER_FLOOR_PU);
+        let i_max = d.i_max_pu;
+        if self.fault_mode {
+            // Reactive priority: reactive current in proportion to the dip.
+            let iq = (self.iq0 + d.k_reactive_current * (d.v_dip_pu - vm)).clamp(-i_max, i_max);
+            let ip_room = (i_max * i_max - iq * iq).max(0.0).sqrt();
+            ((self.p_ref / vm).min(ip_room), iq)
+        } else {
+            let ip = (self.p_ref / vm).min(i_max);
+            let iq_room = (i_max * i_max - ip * ip).max(0.0).sqrt();
+            (ip, (self.q_ref / vm).clamp(-iq_room, iq_room))
+        }
+    }
+
+    /// Derivatives into `dx`; returns the injected current, system pu.
+    pub(crate) fn evaluate(&self, x: &[f64], v: Complex, dx: &mut [f64]) -> Complex {
+        if self.tripped {
+            dx[..3].fill(0.0);
+            return Complex::new(0.0, 0.0);
+        }
+        let vmag = v.norm();
+        let (vm, ip, iq) = (x[0], x[1], x[2]);
+        dx[0] = (vmag - vm) / T_MEASURE_S;
+        let (ip_cmd, iq_cmd) = self.orders(vm);
+        let t = self.data.t_current_s;
+        dx[1] = ((ip_cmd - ip) / t).min(self.data.p_recovery_pu_per_s);
+        dx[2] = (iq_cmd - iq) / t;
+        let unit = v / vmag.max(V_ANGLE_FLOOR_PU);
+        Complex::new(ip, -iq) * unit * self.rating
+    }
+
+    /// After an accepted step at time `t_s`: updates the control mode and the ride-through
+    /// monitor. Returns true if the equations changed (mode switch or trip).
+    pub(crate) fn after_step(&mut self, x: &[f64], t_s: f64) -> bool {
+        if self.tripped {
+            return false;
+        }
+        let vm = x[0];
+        let mut changed = false;
+        let fault = vm < self.data.v_dip_pu;
+        if fault != self.fault_mode {
+            self.fault_mode = fault;
+            changed = true;
+        }
+        for (RideThroughPoint { v_pu, t_s: allowed }, since) in self
+            .data
+            .ride_through
+            .iter()
+            .zip(self.below_since_s.iter_mut())
+        {
+            if vm < *v_pu {
+                if since.is_nan() {
+                    *since = t_s;
+                }
+                if t_s - *since > *allowed + 1e-9 {
+                    self.tripped = true;
+                    return true;
+                }
+            } else {
+                *since = f64::NAN;
+            }
+        }
+        changed
+    }
+}
