@@ -755,13 +755,29 @@ impl<'g> Simulation<'g> {
     }
 
     /// Solves the network with the states held and makes `f` consistent; true on success.
+    /// Frequency measurements ride through the phase jump (see `LoadDevice::follow_phase_jump`).
     fn solve_algebraic(&mut self) -> bool {
         self.x_new.copy_from_slice(&self.x);
         self.v_new.copy_from_slice(&self.v);
-        if !self.newton(self.h, Mode::Algebraic) {
-            return false;
+        // The measurements follow the phase jump, which changes the loads a little, which moves
+        // the voltages a little: a few passes settle it.
+        for _ in 0..4 {
+            if !self.newton(self.h, Mode::Algebraic) {
+                return false;
+            }
+            let mut largest = 0.0_f64;
+            for s in self.slots.iter().filter(|s| s.active) {
+                if let Device::Load(l) = &s.device {
+                    let x = &mut self.x_new[s.offset..s.offset + s.n];
+                    largest = largest.max(l.follow_phase_jump(x, self.v[s.bus], self.v_new[s.bus]));
+                }
+            }
+            self.v.copy_from_slice(&self.v_new);
+            if largest < 1e-9 {
+                break;
+            }
         }
-        self.v.copy_from_slice(&self.v_new);
+        self.x.copy_from_slice(&self.x_new);
         self.evaluate_all(Which::Accepted);
         // The next step needs a Jacobian for its own mode.
         self.jac_h = f64::NAN;
@@ -849,10 +865,8 @@ impl<'g> Simulation<'g> {
             }
             let e = e.clone();
             self.next_event += 1;
-            if !applied {
-                // Record the state just before the jump.
-                self.record();
-            }
+            // The state just before the jump was recorded at the end of the step that landed
+            // here (or at the start of the run).
             self.apply(&e.event);
             applied = true;
         }

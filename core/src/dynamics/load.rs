@@ -175,8 +175,8 @@ impl LoadDevice {
         let v02 = self.v0 * self.v0;
         let g = self.p0 * gp * (1.0 + self.k_pf * df) / v02;
         let b = self.q0 * gq * (1.0 + self.k_qf * df) / v02;
-        // Load admittance g - j b draws current (g - j b) V; the shunt injects j b_comp V.
-        let mut current = -Complex::new(g, -b - self.b_comp) * v;
+        // The load draws (g - j b) V and the reconciling capacitor draws j b_comp V.
+        let mut current = -Complex::new(g, self.b_comp - b) * v;
         if let Some(m) = &self.motor {
             let k = m.offset;
             if m.tripped {
@@ -191,6 +191,22 @@ impl LoadDevice {
             }
         }
         current * self.scale
+    }
+
+    /// Moves the frequency measurement's angle state by the phase jump of the bus voltage at
+    /// a switching instant, so that the jump is not read as a frequency excursion: the
+    /// measurement is taken to be immune to phase jumps, as frequency relays are designed to
+    /// be (common practice, no single source). Without this, every fault and clearing would
+    /// throw a spurious frequency spike into frequency-dependent loads.
+    /// Returns the size of the jump followed, rad.
+    pub(crate) fn follow_phase_jump(&self, x: &mut [f64], before: Complex, after: Complex) -> f64 {
+        if self.t_filter_s.is_some() && before.norm() > 0.0 && after.norm() > 0.0 {
+            let jump = wrap_angle(after.arg() - before.arg());
+            x[0] += jump;
+            jump.abs()
+        } else {
+            0.0
+        }
     }
 
     /// After an accepted step of length `h_s`: clamps the slip and runs the motor's
@@ -303,6 +319,46 @@ mod tests {
         assert!((p_in - 0.75).abs() < 1e-9);
         let (te, _) = air_gap(&m, s, Complex::new(1.0, 0.0));
         assert!((te - p_in).abs() < 1e-9, "te {te} p_in {p_in}");
+    }
+
+    #[test]
+    fn composite_load_draws_its_power_flow_value_at_the_initial_voltage() {
+        // Definition of the initialisation: static part, motor and reconciling shunt together
+        // draw exactly P + jQ at the power-flow voltage, S = V conj(I_load).
+        let load = Load {
+            id: "L".into(),
+            bus: crate::BusIdx(0),
+            p_pu: 1.2,
+            q_pu: 0.4,
+            voltage_dependence: crate::VoltageDependence {
+                p_z: 0.4,
+                p_i: 0.3,
+                p_p: 0.3,
+                q_z: 0.6,
+                q_i: 0.2,
+                q_p: 0.2,
+            },
+            frequency_dependence: crate::FrequencyDependence {
+                p_pu_per_pu: 1.5,
+                q_pu_per_pu: -1.0,
+            },
+            motor_share: 0.4,
+            motor: MotorData::TYPICAL,
+            sheddable_fraction: 0.0,
+            priority: 0,
+            in_service: true,
+        };
+        let v = Complex::from_polar(0.97, 0.3);
+        let settings = LoadSettings {
+            v_threshold: 0.7,
+            t_filter_s: 0.05,
+            w_s: 377.0,
+        };
+        let (dev, x) = LoadDevice::new(&load, v, settings).unwrap();
+        let mut dx = vec![0.0; x.len()];
+        let drawn = v * (-dev.evaluate(&x, v, &mut dx)).conj();
+        assert!((drawn - Complex::new(1.2, 0.4)).norm() < 1e-12, "{drawn}");
+        assert!(dx.iter().all(|d| d.abs() < 1e-12), "{dx:?}");
     }
 
     #[test]

@@ -107,3 +107,10 @@ pub(crate) fn wscc9() -> (
         .unwrap();
     (reference, grid, sol)
 }
+
+/// A file of the bundled scenarios (`scenarios/`).
+pub(crate) fn scenario(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../scenarios")
+        .join(name)
+}
