@@ -1,7 +1,9 @@
-//! The `holdfast` command line: grid checks and power flow today; simulation, datasets,
+//! The `holdfast` command line: grid checks, power flow and dynamic simulation today; datasets,
 //! training and advice as the later work lands.
 
+mod plot;
 mod report;
+mod simulate;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -36,6 +38,15 @@ enum Command {
     /// Validate, solve, import and inspect grid files.
     #[command(subcommand)]
     Grid(GridCommand),
+    /// Simulate a contingency: print the stability verdict and margins, optionally write the
+    /// signals (CSV) and a plot (SVG or PNG).
+    ///
+    /// Examples:
+    ///   holdfast simulate scenarios/quillmoor.toml --scenario scenarios/quillmoor-fault.toml --plot run.svg
+    ///   holdfast simulate scenarios/quillmoor.toml --event "0.1 fault 303" --event "0.183 clear 303" \
+    ///       --event "0.183 trip \"North Hub - City North 345 #1\"" --out run.csv
+    #[command(verbatim_doc_comment)]
+    Simulate(simulate::SimulateArgs),
     /// Run the pipeline on the bundled demo grid (today: check it and solve it at light,
     /// nominal and peak load).
     ///
@@ -195,6 +206,7 @@ fn run(cli: Cli) -> Result<()> {
             }
         }
         Command::Grid(GridCommand::Import { input, output }) => import(&input, &output)?,
+        Command::Simulate(args) => simulate::run(&args, &mut out)?,
         Command::Demo => demo(&mut out)?,
     }
     out.flush()?;

@@ -164,3 +164,69 @@ fn outages_split_islands_and_unknown_ids_are_errors() {
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("\"no such line\""));
 }
+
+#[test]
+fn simulate_reports_a_verdict_and_writes_signals_and_plots() {
+    let dir = temp_dir("simulate");
+    let (csv, svg, png) = (
+        dir.join("run.csv"),
+        dir.join("run.svg"),
+        dir.join("run.png"),
+    );
+    let out = holdfast(&[
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--scenario",
+        "scenarios/quillmoor-fault.toml",
+        "--out",
+        csv.to_str().unwrap(),
+        "--plot",
+        svg.to_str().unwrap(),
+    ]);
+    let stdout = text(&out.stdout);
+    assert!(out.status.success(), "{stdout}{}", text(&out.stderr));
+    assert!(stdout.contains("Verdict: "), "{stdout}");
+    assert!(stdout.contains("not a protection scheme"), "{stdout}");
+    let table = std::fs::read_to_string(&csv).unwrap();
+    let header = table.lines().next().unwrap();
+    assert!(
+        header.starts_with("time_s,frequency_hz,angle_deg:"),
+        "{header}"
+    );
+    assert!(table.lines().count() > 100);
+    assert!(std::fs::read_to_string(&svg).unwrap().contains("<svg"));
+    // PNG from one-line events, and JSON output.
+    let out = holdfast(&[
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--event",
+        "0.1 fault 303",
+        "--event",
+        "0.1833 clear 303",
+        "--duration",
+        "2",
+        "--plot",
+        png.to_str().unwrap(),
+        "--json",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(v["stable"].is_boolean() && v["max_angle_deg"].as_f64().unwrap() > 0.0);
+    assert_eq!(&std::fs::read(&png).unwrap()[1..4], b"PNG");
+}
+
+#[test]
+fn simulate_names_a_bad_event() {
+    let out = holdfast(&[
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--event",
+        "0.1 fault 9999",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(
+        err.contains("0.1 fault 9999") && err.contains("no bus"),
+        "{err}"
+    );
+}

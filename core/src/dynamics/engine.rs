@@ -60,7 +60,8 @@ pub struct SimulationOptions {
     pub tolerance: f64,
     /// Most Newton iterations in one step before the step is declared failed.
     pub max_iterations: usize,
-    /// Iterations after which a step rebuilds a Jacobian it has not rebuilt yet.
+    /// Iterations on one Jacobian after which a step rebuilds it (it also rebuilds it when the
+    /// residual falls by less than a factor of four in an iteration).
     pub refresh_after_iterations: usize,
     /// Share of a load's initial voltage below which its constant-current and constant-power
     /// parts become constant impedance (default 0.7; common practice, DOMAIN.md 4.1).
@@ -211,6 +212,10 @@ pub struct Simulation<'g> {
     x_new: Vec<f64>,
     v_new: Vec<Complex>,
     f_new: Vec<f64>,
+    /// Voltages at the previous accepted point and the step that led from it (0: none, after
+    /// an event), for the predictor.
+    v_prev: Vec<Complex>,
+    h_prev: f64,
     residual: Vec<f64>,
     a_inv_r: Vec<f64>,
     rhs: Vec<f64>,
@@ -391,6 +396,8 @@ impl<'g> Simulation<'g> {
             v: v.clone(),
             f: vec![0.0; nx],
             x_new: x,
+            v_prev: v.clone(),
+            h_prev: 0.0,
             v_new: v,
             f_new: vec![0.0; nx],
             residual: vec![0.0; nx],
@@ -671,7 +678,7 @@ impl<'g> Simulation<'g> {
     /// the network with the states held. Returns false if it does not converge.
     fn newton(&mut self, h: f64, mode: Mode) -> bool {
         let a = 0.5 * h;
-        let mut refreshed = false;
+        let mut since_refresh = usize::MAX;
         let mut last_norm = f64::INFINITY;
         for it in 0..=self.opts.max_iterations {
             self.evaluate_all(Which::Trial);
@@ -702,13 +709,20 @@ impl<'g> Simulation<'g> {
             if it == self.opts.max_iterations {
                 return false;
             }
+            // Rebuild when the Jacobian belongs to another step length or mode, when the
+            // residual falls by less than a factor of four, or after a few iterations on it.
             let stale = self.jac_h.is_nan() || self.jac_h != h || self.jac_mode != mode;
-            let slow = !refreshed && (it >= self.opts.refresh_after_iterations || norm > last_norm);
+            let slow = since_refresh > 0
+                && (norm > 0.25 * last_norm
+                    || (since_refresh == usize::MAX && it >= self.opts.refresh_after_iterations));
             if stale || slow {
                 if !self.refresh_jacobian(h, mode) {
                     return false;
                 }
-                refreshed = true;
+                since_refresh = 0;
+            }
+            if since_refresh != usize::MAX {
+                since_refresh += 1;
             }
             last_norm = norm;
             // Reduced right-hand side: -F + sum C A^-1 R.
@@ -779,8 +793,9 @@ impl<'g> Simulation<'g> {
         }
         self.x.copy_from_slice(&self.x_new);
         self.evaluate_all(Which::Accepted);
-        // The next step needs a Jacobian for its own mode.
+        // The next step needs a Jacobian for its own mode, and no extrapolation across a jump.
         self.jac_h = f64::NAN;
+        self.h_prev = 0.0;
         true
     }
 
@@ -788,10 +803,19 @@ impl<'g> Simulation<'g> {
     fn advance(&mut self, step: f64) {
         let mut h = step;
         for attempt in 0..=MAX_STEP_HALVINGS {
+            // Predictor: explicit Euler for the states, linear extrapolation of the voltages
+            // when the previous step was smooth (no event since).
             for i in 0..self.x.len() {
                 self.x_new[i] = self.x[i] + h * self.f[i];
             }
-            self.v_new.copy_from_slice(&self.v);
+            if self.h_prev > 0.0 {
+                let r = h / self.h_prev;
+                for k in 0..self.v.len() {
+                    self.v_new[k] = self.v[k] + (self.v[k] - self.v_prev[k]) * r;
+                }
+            } else {
+                self.v_new.copy_from_slice(&self.v);
+            }
             if self.newton(h, Mode::Step) {
                 self.accept(h);
                 return;
@@ -812,6 +836,8 @@ impl<'g> Simulation<'g> {
     fn accept(&mut self, h: f64) {
         self.stats.steps += 1;
         self.t += h;
+        self.v_prev.copy_from_slice(&self.v);
+        self.h_prev = h;
         std::mem::swap(&mut self.x, &mut self.x_new);
         std::mem::swap(&mut self.v, &mut self.v_new);
         std::mem::swap(&mut self.f, &mut self.f_new);
@@ -825,7 +851,7 @@ impl<'g> Simulation<'g> {
             let x = &mut self.x[s.offset..s.offset + s.n];
             let v = self.v[s.bus];
             match &mut s.device {
-                Device::Unit(u) => clamped |= u.clamp(x, v),
+                Device::Unit(u) => clamped |= u.after_step(x, v),
                 Device::Load(l) => {
                     if l.after_step(x, v, t) {
                         switched = true;

@@ -272,7 +272,8 @@ fn trip_event(grid: &Grid, id: &str) -> Option<Event> {
 }
 
 /// Parses a one-line event: `TIME ACTION ARGS`, with actions
-/// `fault BUS [x=X_PU] [r=R_PU]`, `clear BUS`, `trip ID`, `shed BUS MW`, `load BUS MW`.
+/// `fault BUS [x=X_PU] [r=R_PU]`, `clear BUS`, `trip ID` (the rest of the line, quotes
+/// optional), `shed BUS MW`, `load BUS MW`.
 /// Errors name the offending word.
 pub fn parse_event_line(grid: &Grid, line: &str) -> Result<TimedEvent, String> {
     let words: Vec<&str> = line.split_whitespace().collect();
@@ -319,9 +320,14 @@ pub fn parse_event_line(grid: &Grid, line: &str) -> Result<TimedEvent, String> {
             }
         }
         ("clear", [b]) => Event::ClearFault { bus: bus(b)? },
-        ("trip", [id]) => trip_event(grid, id).ok_or_else(|| {
-            format!("event \"{line}\": no branch, machine or wind plant has the id \"{id}\"")
-        })?,
+        ("trip", words) => {
+            // The id is the rest of the line (ids may hold spaces), quotes optional.
+            let id = words.join(" ");
+            let id = id.trim_matches('"');
+            trip_event(grid, id).ok_or_else(|| {
+                format!("event \"{line}\": no branch, machine or wind plant has the id \"{id}\"")
+            })?
+        }
         ("shed", [b, mw]) => {
             let p = number(mw, "amount")?;
             if p < 0.0 {

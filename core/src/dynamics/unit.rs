@@ -31,16 +31,59 @@ pub enum MachineModel {
     Subtransient,
 }
 
+/// A non-windup limit on a first-order lag `T dx/dt = drive - x`, engaged and released at step
+/// boundaries and held through each step, so that the Newton iteration sees smooth equations
+/// (IEEE Std 421.5 Annex E behaviour, resolved to the step).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+enum HeldLimit {
+    #[default]
+    Free,
+    AtUpper,
+    AtLower,
+}
+
+impl HeldLimit {
+    /// Derivative and output of the lag inside a step.
+    fn apply(self, x: f64, free_derivative: f64, lo: f64, hi: f64) -> (f64, f64) {
+        match self {
+            HeldLimit::Free => (free_derivative, x),
+            HeldLimit::AtUpper => (0.0, hi),
+            HeldLimit::AtLower => (0.0, lo),
+        }
+    }
+
+    /// At a step boundary: engages when the state has crossed a limit, releases when the drive
+    /// points back inside; pins the state at an engaged limit. True if anything changed.
+    fn update(&mut self, x: &mut f64, drive: f64, lo: f64, hi: f64) -> bool {
+        let before = (*self, *x);
+        *self = match *self {
+            HeldLimit::AtUpper if drive >= hi => HeldLimit::AtUpper,
+            HeldLimit::AtLower if drive <= lo => HeldLimit::AtLower,
+            _ if *x > hi => HeldLimit::AtUpper,
+            _ if *x < lo => HeldLimit::AtLower,
+            _ => HeldLimit::Free,
+        };
+        match *self {
+            HeldLimit::AtUpper => *x = hi,
+            HeldLimit::AtLower => *x = lo,
+            HeldLimit::Free => *x = x.clamp(lo, hi),
+        }
+        before != (*self, *x)
+    }
+}
+
 #[derive(Clone, Debug)]
 struct Exciter {
     data: ExciterData,
     v_ref: f64,
     offset: usize,
+    limit: HeldLimit,
 }
 
 #[derive(Clone, Debug)]
 struct Governor {
     data: GovernorData,
+    limit: HeldLimit,
     p_ref: f64,
     /// Machine rating over system base: machine pu to system pu.
     scale: f64,
@@ -139,6 +182,7 @@ impl Unit {
                     data,
                     v_ref,
                     offset,
+                    limit: HeldLimit::Free,
                 })
             }
         };
@@ -163,6 +207,7 @@ impl Unit {
                 }
                 Some(Governor {
                     data,
+                    limit: HeldLimit::Free,
                     p_ref: pm_machine,
                     scale,
                     offset,
@@ -214,11 +259,11 @@ impl Unit {
         let pe = vd * id + vq * iq + ra * (id * id + iq * iq);
         let vt = v.norm();
         let efd = match &self.exciter {
-            Some(e) => exciter_evaluate(e, x, vt, dx),
+            Some(e) => exciter_evaluate(e, x, vt, dx).0,
             None => self.efd0,
         };
         let pm = match &self.governor {
-            Some(g) => governor_evaluate(g, x, w, dx),
+            Some(g) => governor_evaluate(g, x, w, dx).0,
             None => self.pm0,
         };
         dx[0] = self.w_s * (w - 1.0);
@@ -239,42 +284,37 @@ impl Unit {
         Complex::new(id * sin + iq * cos, iq * sin - id * cos)
     }
 
-    /// Holds limited states inside their limits after a step (non-windup limiters).
-    pub(crate) fn clamp(&self, x: &mut [f64], v: Complex) -> bool {
+    /// At a step boundary: engages or releases the exciter's and governor's limits for the
+    /// next step. True if a state or a limit changed.
+    pub(crate) fn after_step(&mut self, x: &mut [f64], v: Complex) -> bool {
+        let mut scratch = [0.0; MAX_UNIT_STATES];
+        let dx = &mut scratch[..x.len().min(MAX_UNIT_STATES)];
         let mut changed = false;
-        if let Some(e) = &self.exciter {
-            let (lo, hi) = exciter_limits(&e.data, v.norm());
+        let vt = v.norm();
+        if let Some(e) = &mut self.exciter {
+            let (_, drive) = exciter_evaluate(e, x, vt, dx);
+            let (lo, hi) = exciter_limits(&e.data, vt);
             let k = e.offset + exciter_n_states(&e.data) - 1;
-            changed |= clamp_to(&mut x[k], lo, hi);
+            changed |= e.limit.update(&mut x[k], drive, lo, hi);
         }
-        if let Some(g) = &self.governor {
-            changed |= clamp_to(&mut x[g.offset], g.data.valve_min_pu, g.data.valve_max_pu);
+        if let Some(g) = &mut self.governor {
+            let (_, target) = governor_evaluate(g, x, x[1], dx);
+            let d = g.data;
+            changed |= g
+                .limit
+                .update(&mut x[g.offset], target, d.valve_min_pu, d.valve_max_pu);
         }
         changed
     }
 }
 
-fn clamp_to(x: &mut f64, lo: f64, hi: f64) -> bool {
-    let c = x.clamp(lo, hi);
-    let changed = c != *x;
-    *x = c;
-    changed
-}
+/// Most states a unit can have: six machine states, three exciter states, two governor states.
+const MAX_UNIT_STATES: usize = 11;
 
 /// Rotates a phasor of the network frame into the machine's d-q frame (q axis at `delta`).
 fn to_dq(p: Complex, delta: f64) -> (f64, f64) {
     let (sin, cos) = delta.sin_cos();
     (p.re * sin - p.im * cos, p.re * cos + p.im * sin)
-}
-
-/// Zero a derivative that would drive a state further past a limit (non-windup limiter,
-/// IEEE Std 421.5 Annex E).
-fn non_windup(x: f64, dx: f64, lo: f64, hi: f64) -> f64 {
-    if (x >= hi && dx > 0.0) || (x <= lo && dx < 0.0) {
-        0.0
-    } else {
-        dx
-    }
 }
 
 fn exciter_n_states(data: &ExciterData) -> usize {
@@ -342,8 +382,9 @@ fn init_exciter(data: &ExciterData, vt: f64, efd0: f64, x: &mut Vec<f64>) -> Res
     }
 }
 
-/// Exciter derivatives into `dx`; returns the field voltage applied to the machine.
-fn exciter_evaluate(e: &Exciter, x: &[f64], vt: f64, dx: &mut [f64]) -> f64 {
+/// Exciter derivatives into `dx`; returns the field voltage applied to the machine and the
+/// amplifier's drive (the value its output lags towards).
+fn exciter_evaluate(e: &Exciter, x: &[f64], vt: f64, dx: &mut [f64]) -> (f64, f64) {
     let mut k = e.offset;
     let measured = |t: f64, dx: &mut [f64], k: &mut usize| {
         if t > 0.0 {
@@ -387,24 +428,24 @@ fn exciter_evaluate(e: &Exciter, x: &[f64], vt: f64, dx: &mut [f64]) -> f64 {
             (gain * u, t_s)
         }
     };
-    let efd = x[k];
-    dx[k] = non_windup(efd, (drive - efd) / t_out, lo, hi);
-    efd.clamp(lo, hi)
+    let (d, efd) = e.limit.apply(x[k], (drive - x[k]) / t_out, lo, hi);
+    dx[k] = d;
+    (efd, drive)
 }
 
-/// Governor derivatives into `dx`; returns the mechanical power, system pu.
-fn governor_evaluate(g: &Governor, x: &[f64], w: f64, dx: &mut [f64]) -> f64 {
+/// Governor derivatives into `dx`; returns the mechanical power (system pu) and the valve's
+/// target position.
+fn governor_evaluate(g: &Governor, x: &[f64], w: f64, dx: &mut [f64]) -> (f64, f64) {
     let d = &g.data;
     let k = g.offset;
-    let valve = x[k];
     let target = g.p_ref - (w - 1.0) / d.droop_pu;
-    dx[k] = non_windup(
-        valve,
-        (target - valve) / d.t_valve_s,
+    let (dv, valve) = g.limit.apply(
+        x[k],
+        (target - x[k]) / d.t_valve_s,
         d.valve_min_pu,
         d.valve_max_pu,
     );
-    let valve = valve.clamp(d.valve_min_pu, d.valve_max_pu);
+    dx[k] = dv;
     let pm = if d.t_reheat_s > 0.0 {
         let reheat = x[k + 1];
         dx[k + 1] = (valve - reheat) / d.t_reheat_s;
@@ -412,7 +453,7 @@ fn governor_evaluate(g: &Governor, x: &[f64], w: f64, dx: &mut [f64]) -> f64 {
     } else {
         valve
     };
-    pm * g.scale
+    (pm * g.scale, target)
 }
 
 #[cfg(test)]
@@ -428,10 +469,19 @@ mod tests {
     }
 
     #[test]
-    fn non_windup_holds_only_outward_motion() {
-        assert_eq!(non_windup(1.0, 2.0, 0.0, 1.0), 0.0);
-        assert_eq!(non_windup(1.0, -2.0, 0.0, 1.0), -2.0);
-        assert_eq!(non_windup(0.0, -2.0, 0.0, 1.0), 0.0);
-        assert_eq!(non_windup(0.5, 2.0, 0.0, 1.0), 2.0);
+    fn held_limit_engages_past_the_limit_and_releases_when_the_drive_returns() {
+        // Non-windup behaviour (IEEE Std 421.5 Annex E): the state stops at the limit and
+        // leaves it as soon as its input points back inside.
+        let mut l = HeldLimit::Free;
+        let mut x = 1.2;
+        assert!(l.update(&mut x, 3.0, 0.0, 1.0));
+        assert_eq!((l, x), (HeldLimit::AtUpper, 1.0));
+        assert_eq!(l.apply(x, 5.0, 0.0, 1.0), (0.0, 1.0));
+        assert!(
+            !l.update(&mut x, 2.0, 0.0, 1.0),
+            "still driven upwards: held"
+        );
+        assert!(l.update(&mut x, 0.5, 0.0, 1.0));
+        assert_eq!(l, HeldLimit::Free);
     }
 }

@@ -25,8 +25,14 @@ pub(crate) struct WindDevice {
     p_ref: f64,
     q_ref: f64,
     iq0: f64,
-    /// In fault mode (measured voltage below the dip threshold) at the last step boundary.
+    /// Control branches, chosen at each step boundary and held through the step so that the
+    /// Newton iteration sees smooth equations (a limit engages at the next boundary):
+    /// fault mode (measured voltage below the dip threshold), which current limit binds, and
+    /// whether the active-current ramp limit binds.
     fault_mode: bool,
+    ip_capped: bool,
+    iq_capped: bool,
+    ramp_limited: bool,
     pub(crate) tripped: bool,
     /// Time each ride-through level was first undershot in the current excursion (NaN: above).
     below_since_s: Vec<f64>,
@@ -50,6 +56,9 @@ impl WindDevice {
             q_ref: q,
             iq0: q / v0.max(V_ORDER_FLOOR_PU),
             fault_mode: false,
+            ip_capped: false,
+            iq_capped: false,
+            ramp_limited: false,
             tripped: false,
             below_since_s: vec![f64::NAN; data.ride_through.len()],
         };
@@ -61,21 +70,66 @@ impl WindDevice {
         (dev, x)
     }
 
-    /// Current orders `(ip, iq)` at measured voltage `vm`, limits applied.
+    /// Current orders `(ip, iq)` at measured voltage `vm`, with the limits chosen at the last
+    /// step boundary.
     fn orders(&self, vm: f64) -> (f64, f64) {
         let d = &self.data;
         let vm = vm.max(V_ORDER_FLOOR_PU);
         let i_max = d.i_max_pu;
         if self.fault_mode {
             // Reactive priority: reactive current in proportion to the dip.
-            let iq = (self.iq0 + d.k_reactive_current * (d.v_dip_pu - vm)).clamp(-i_max, i_max);
-            let ip_room = (i_max * i_max - iq * iq).max(0.0).sqrt();
-            ((self.p_ref / vm).min(ip_room), iq)
+            let raw = self.iq0 + d.k_reactive_current * (d.v_dip_pu - vm);
+            let iq = if self.iq_capped {
+                i_max.copysign(raw)
+            } else {
+                raw
+            };
+            let room = (i_max * i_max - iq * iq).max(0.0).sqrt();
+            (
+                if self.ip_capped {
+                    room
+                } else {
+                    self.p_ref / vm
+                },
+                iq,
+            )
         } else {
-            let ip = (self.p_ref / vm).min(i_max);
-            let iq_room = (i_max * i_max - ip * ip).max(0.0).sqrt();
-            (ip, (self.q_ref / vm).clamp(-iq_room, iq_room))
+            let ip = if self.ip_capped {
+                i_max
+            } else {
+                self.p_ref / vm
+            };
+            let room = (i_max * i_max - ip * ip).max(0.0).sqrt();
+            let raw = self.q_ref / vm;
+            (
+                ip,
+                if self.iq_capped {
+                    room.copysign(raw)
+                } else {
+                    raw
+                },
+            )
         }
+    }
+
+    /// Chooses the control branches for the next step from the state at a step boundary.
+    fn choose_branches(&mut self, x: &[f64]) {
+        let d = &self.data;
+        let vm = x[0].max(V_ORDER_FLOOR_PU);
+        let i_max = d.i_max_pu;
+        self.fault_mode = x[0] < d.v_dip_pu;
+        if self.fault_mode {
+            let raw = self.iq0 + d.k_reactive_current * (d.v_dip_pu - vm);
+            self.iq_capped = raw.abs() > i_max;
+            let iq = raw.clamp(-i_max, i_max);
+            self.ip_capped = self.p_ref / vm > (i_max * i_max - iq * iq).max(0.0).sqrt();
+        } else {
+            self.ip_capped = self.p_ref / vm > i_max;
+            let ip = (self.p_ref / vm).min(i_max);
+            self.iq_capped = (self.q_ref / vm).abs() > (i_max * i_max - ip * ip).max(0.0).sqrt();
+        }
+        let (ip_cmd, _) = self.orders(x[0]);
+        self.ramp_limited = (ip_cmd - x[1]) / d.t_current_s > d.p_recovery_pu_per_s;
     }
 
     /// Derivatives into `dx`; returns the injected current, system pu.
@@ -89,7 +143,11 @@ impl WindDevice {
         dx[0] = (vmag - vm) / T_MEASURE_S;
         let (ip_cmd, iq_cmd) = self.orders(vm);
         let t = self.data.t_current_s;
-        dx[1] = ((ip_cmd - ip) / t).min(self.data.p_recovery_pu_per_s);
+        dx[1] = if self.ramp_limited {
+            self.data.p_recovery_pu_per_s
+        } else {
+            (ip_cmd - ip) / t
+        };
         dx[2] = (iq_cmd - iq) / t;
         let unit = v / vmag.max(V_ANGLE_FLOOR_PU);
         Complex::new(ip, -iq) * unit * self.rating
@@ -102,12 +160,20 @@ impl WindDevice {
             return false;
         }
         let vm = x[0];
-        let mut changed = false;
-        let fault = vm < self.data.v_dip_pu;
-        if fault != self.fault_mode {
-            self.fault_mode = fault;
-            changed = true;
-        }
+        let before = (
+            self.fault_mode,
+            self.ip_capped,
+            self.iq_capped,
+            self.ramp_limited,
+        );
+        self.choose_branches(x);
+        let changed = before
+            != (
+                self.fault_mode,
+                self.ip_capped,
+                self.iq_capped,
+                self.ramp_limited,
+            );
         for (RideThroughPoint { v_pu, t_s: allowed }, since) in self
             .data
             .ride_through

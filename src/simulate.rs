@@ -1,0 +1,393 @@
+//! `holdfast simulate`: runs a scenario on a grid and reports the stability verdict, margins,
+//! a CSV of signals and a plot.
+
+use std::io::Write;
+use std::path::PathBuf;
+use std::time::Instant;
+
+use anyhow::{Context, Result, bail};
+use holdfast_core::Grid;
+use holdfast_core::dynamics::{
+    Event, MachineModelChoice, Scenario, SimulationOptions, SimulationResult, StabilityCriteria,
+    Trajectory, parse_event_line, read_scenario, simulate,
+};
+use holdfast_core::powerflow::solve;
+use serde::Serialize;
+
+use crate::report::CAUTION;
+use crate::{SolveArgs, plot, write_atomically};
+
+/// Arguments of `holdfast simulate`.
+#[derive(clap::Args, Debug)]
+pub(crate) struct SimulateArgs {
+    #[command(flatten)]
+    pub(crate) grid: SolveArgs,
+    /// A scenario file (TOML; see scenarios/README.md).
+    #[arg(long, value_name = "FILE.toml")]
+    pub(crate) scenario: Option<PathBuf>,
+    /// One event (repeatable): "TIME fault BUS [x=X_PU] [r=R_PU]", "TIME clear BUS",
+    /// "TIME trip ID", "TIME shed BUS MW", "TIME load BUS MW". Added to the scenario file's.
+    #[arg(long = "event", value_name = "EVENT")]
+    pub(crate) events: Vec<String>,
+    /// Length of the run, s.
+    #[arg(long, value_name = "S", default_value_t = 10.0)]
+    pub(crate) duration: f64,
+    /// Integration step, s (default: half a cycle).
+    #[arg(long, value_name = "S")]
+    pub(crate) step: Option<f64>,
+    /// Use the classical model for every machine (exciters ignored).
+    #[arg(long)]
+    pub(crate) classical: bool,
+    /// Run to the end even after a criterion has failed.
+    #[arg(long)]
+    pub(crate) full_run: bool,
+    /// Write the signals (time, frequency, rotor angles, bus voltages) to a CSV file.
+    #[arg(long, value_name = "FILE.csv")]
+    pub(crate) out: Option<PathBuf>,
+    /// Draw rotor angles, load-bus voltages and frequency to an .svg or .png file.
+    #[arg(long, value_name = "FILE.svg|FILE.png")]
+    pub(crate) plot: Option<PathBuf>,
+    /// Print the verdict as JSON.
+    #[arg(long)]
+    pub(crate) json: bool,
+}
+
+/// The verdict in JSON (`holdfast simulate --json`).
+#[derive(Serialize)]
+struct VerdictReport {
+    stable: bool,
+    failed_criterion: Option<String>,
+    failed_at_s: Option<f64>,
+    failed_where: Option<String>,
+    max_angle_deg: f64,
+    min_voltage_after_clearing: f64,
+    slowest_recovery_s: Option<f64>,
+    nadir_hz: f64,
+    zenith_hz: f64,
+    final_frequency_hz: f64,
+    end_time_s: f64,
+    stopped_early: bool,
+    wind_trips: Vec<String>,
+    motor_trips: Vec<String>,
+    steps: usize,
+    newton_iterations: usize,
+    factorisations: usize,
+    wall_ms: f64,
+}
+
+pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
+    let grid = args.grid.load()?;
+    let outages = args.grid.outages(&grid)?;
+    let pf = solve(&grid, &outages, &args.grid.options()?).converged()?;
+    let mut scenario = match &args.scenario {
+        Some(path) => read_scenario(path, &grid)?,
+        None => Scenario::default(),
+    };
+    for line in &args.events {
+        scenario
+            .events
+            .push(parse_event_line(&grid, line).map_err(anyhow::Error::msg)?);
+    }
+    if !(args.duration.is_finite() && args.duration > 0.0 && args.duration <= 3600.0) {
+        bail!(
+            "--duration must be between 0 and 3600 s (got {})",
+            args.duration
+        );
+    }
+    if let Some(h) = args.step
+        && !(h.is_finite() && h > 0.0 && h <= 0.1)
+    {
+        bail!("--step must be between 0 and 0.1 s (got {h})");
+    }
+    let options = SimulationOptions {
+        step_s: args.step,
+        duration_s: args.duration,
+        machine_model: if args.classical {
+            MachineModelChoice::Classical
+        } else {
+            MachineModelChoice::Detailed
+        },
+        early_stop: !args.full_run,
+        record: args.out.is_some() || args.plot.is_some(),
+        ..SimulationOptions::default()
+    };
+    let started = Instant::now();
+    let result = simulate(&grid, &outages, &pf, &scenario, &options)?;
+    let wall_ms = started.elapsed().as_secs_f64() * 1e3;
+    if let (Some(path), Some(tr)) = (&args.out, &result.trajectory) {
+        write_atomically(path, csv(tr).as_bytes())?;
+    }
+    if let (Some(path), Some(tr)) = (&args.plot, &result.trajectory) {
+        let title = format!(
+            "{}: {}",
+            grid.name,
+            if scenario.name.is_empty() {
+                "simulated run"
+            } else {
+                &scenario.name
+            }
+        );
+        plot::write_plot(path, &title, tr, &load_bus_positions(&grid))
+            .with_context(|| format!("plot {}", path.display()))?;
+    }
+    if args.json {
+        serde_json::to_writer_pretty(&mut *out, &json(&result, wall_ms))?;
+        writeln!(out)?;
+    } else {
+        let grid_name = args.grid.grid.display().to_string();
+        text(
+            out, &grid, &grid_name, &scenario, &options, &result, wall_ms,
+        )?;
+        for (what, path) in [("signals", &args.out), ("plot", &args.plot)] {
+            if let Some(p) = path {
+                writeln!(out, "Wrote the {what} to {}", p.display())?;
+            }
+        }
+        writeln!(out)?;
+        writeln!(out, "{CAUTION}")?;
+    }
+    Ok(())
+}
+
+/// Positions (in the grid's bus order) of the buses that carry load.
+fn load_bus_positions(grid: &Grid) -> Vec<usize> {
+    let mut buses: Vec<usize> = grid
+        .loads
+        .iter()
+        .filter(|l| l.in_service && l.p_pu > 0.0)
+        .map(|l| l.bus.get())
+        .collect();
+    buses.sort_unstable();
+    buses.dedup();
+    buses
+}
+
+fn describe(grid: &Grid, e: &Event) -> String {
+    let bus = |b: holdfast_core::BusIdx| grid.buses[b.get()].number;
+    match e {
+        Event::Fault { bus: b, r_pu, x_pu } => {
+            format!(
+                "three-phase fault at bus {} (r {r_pu} pu, x {x_pu} pu)",
+                bus(*b)
+            )
+        }
+        Event::ClearFault { bus: b } => format!("fault at bus {} cleared", bus(*b)),
+        Event::TripBranch(k) => format!("branch \"{}\" opens", grid.branches[k.get()].id),
+        Event::TripMachine(k) => format!("machine \"{}\" trips", grid.machines[k.get()].id),
+        Event::TripWind(k) => format!("wind plant \"{}\" trips", grid.wind_plants[k.get()].id),
+        Event::LoadStep { bus: b, p_pu } => format!(
+            "load at bus {} changes by {:+.1} MW",
+            bus(*b),
+            p_pu * grid.s_base_mva
+        ),
+        Event::Shed { bus: b, p_pu } => format!(
+            "{:.1} MW of load shed at bus {}",
+            p_pu * grid.s_base_mva,
+            bus(*b)
+        ),
+    }
+}
+
+fn text(
+    out: &mut impl Write,
+    grid: &Grid,
+    grid_name: &str,
+    scenario: &Scenario,
+    options: &SimulationOptions,
+    result: &SimulationResult,
+    wall_ms: f64,
+) -> Result<()> {
+    let h = options.step_s.unwrap_or(0.5 / grid.frequency_hz);
+    writeln!(
+        out,
+        "Simulation of {grid_name}{}: {:.1} s at {:.2}-ms steps, {} machine models",
+        if scenario.name.is_empty() {
+            String::new()
+        } else {
+            format!(", scenario \"{}\"", scenario.name)
+        },
+        options.duration_s,
+        h * 1e3,
+        match options.machine_model {
+            MachineModelChoice::Classical => "classical",
+            MachineModelChoice::Detailed => "detailed",
+        }
+    )?;
+    let mut events = scenario.events.clone();
+    events.sort_by(|a, b| a.t_s.total_cmp(&b.t_s));
+    if events.is_empty() {
+        writeln!(out, "No events: a flat run.")?;
+    }
+    for e in &events {
+        writeln!(out, "  {:>7.3} s  {}", e.t_s, describe(grid, &e.event))?;
+    }
+    writeln!(out)?;
+    let v = &result.verdict;
+    let c = options
+        .criteria
+        .unwrap_or_else(|| StabilityCriteria::for_frequency(grid.frequency_hz));
+    match &v.failure {
+        None => writeln!(out, "Verdict: STABLE")?,
+        Some(f) => writeln!(
+            out,
+            "Verdict: UNSTABLE: {} at {:.3} s, {} ({}){}",
+            f.criterion,
+            f.time_s,
+            f.location,
+            if f.value.is_nan() {
+                "no value".to_string()
+            } else {
+                format!("{:.3}", f.value)
+            },
+            if v.stopped_early {
+                "; the run stopped there"
+            } else {
+                ""
+            }
+        )?,
+    }
+    let m = &v.margins;
+    writeln!(out, "Margins:")?;
+    writeln!(
+        out,
+        "  largest rotor angle from centre of inertia  {:>8.1} deg   (limit {:.0})",
+        m.max_angle_deg, c.max_angle_deg
+    )?;
+    if m.min_voltage_after_clearing.is_finite() {
+        writeln!(
+            out,
+            "  lowest load-bus voltage after the event     {:>8.3} of pre-contingency (recover to {:.2} within {:.1} s, floor {:.2})",
+            m.min_voltage_after_clearing, c.recovery_level, c.recovery_time_s, c.floor_level
+        )?;
+        writeln!(
+            out,
+            "  slowest recovery above {:.2}                 {:>8}",
+            c.recovery_level,
+            if m.slowest_recovery_s.is_finite() {
+                format!("{:.3} s", m.slowest_recovery_s)
+            } else {
+                "never".to_string()
+            }
+        )?;
+    }
+    writeln!(
+        out,
+        "  frequency nadir / zenith                    {:>8.3} / {:.3} Hz (limits {:.2} / {:.2})",
+        m.nadir_hz, m.zenith_hz, c.nadir_hz, c.zenith_hz
+    )?;
+    writeln!(
+        out,
+        "  final frequency                             {:>8.3} Hz   (band +/-{:.2} Hz)",
+        m.final_frequency_hz, c.final_band_hz
+    )?;
+    let list = |trips: &[(String, f64)]| {
+        if trips.is_empty() {
+            "none".to_string()
+        } else {
+            trips
+                .iter()
+                .map(|(id, t)| format!("\"{id}\" at {t:.3} s"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        }
+    };
+    writeln!(
+        out,
+        "  wind plants tripped on ride-through: {}",
+        list(&v.wind_trips)
+    )?;
+    writeln!(
+        out,
+        "  motor shares tripped on under-voltage: {}",
+        list(&v.motor_trips)
+    )?;
+    let s = &result.stats;
+    writeln!(
+        out,
+        "Run: {:.2} s simulated, {} steps, {} Newton iterations, {} factorisations, {:.1} ms wall",
+        v.end_time_s, s.steps, s.iterations, s.factorisations, wall_ms
+    )?;
+    Ok(())
+}
+
+fn json(result: &SimulationResult, wall_ms: f64) -> VerdictReport {
+    let v = &result.verdict;
+    let m = &v.margins;
+    VerdictReport {
+        stable: v.is_stable(),
+        failed_criterion: v.failure.as_ref().map(|f| f.criterion.to_string()),
+        failed_at_s: v.failure.as_ref().map(|f| f.time_s),
+        failed_where: v.failure.as_ref().map(|f| f.location.clone()),
+        max_angle_deg: m.max_angle_deg,
+        min_voltage_after_clearing: m.min_voltage_after_clearing,
+        slowest_recovery_s: m
+            .slowest_recovery_s
+            .is_finite()
+            .then_some(m.slowest_recovery_s),
+        nadir_hz: m.nadir_hz,
+        zenith_hz: m.zenith_hz,
+        final_frequency_hz: m.final_frequency_hz,
+        end_time_s: v.end_time_s,
+        stopped_early: v.stopped_early,
+        wind_trips: v.wind_trips.iter().map(|(id, _)| id.clone()).collect(),
+        motor_trips: v.motor_trips.iter().map(|(id, _)| id.clone()).collect(),
+        steps: result.stats.steps,
+        newton_iterations: result.stats.iterations,
+        factorisations: result.stats.factorisations,
+        wall_ms,
+    }
+}
+
+/// The trajectory as CSV: time, frequency, then one column per machine angle and bus voltage.
+fn csv(tr: &Trajectory) -> String {
+    let mut s = String::from("time_s,frequency_hz");
+    for m in &tr.machines {
+        s += &format!(",angle_deg:{}", m.replace(',', ";"));
+    }
+    for b in &tr.buses {
+        s += &format!(",v_pu:{b}");
+    }
+    s.push('\n');
+    for k in 0..tr.time_s.len() {
+        s += &format!("{:.6},{:.6}", tr.time_s[k], tr.frequency_hz[k]);
+        for a in &tr.angle_deg {
+            s += &format!(",{:.4}", a[k]);
+        }
+        for v in &tr.voltage_pu {
+            s += &format!(",{:.6}", v[k]);
+        }
+        s.push('\n');
+    }
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::path::Path;
+
+    #[test]
+    fn csv_has_one_row_per_sample_and_named_columns() {
+        let tr = Trajectory {
+            time_s: vec![0.0, 0.1],
+            machines: vec!["G1".into()],
+            angle_deg: vec![vec![1.0, 2.0]],
+            buses: vec![7],
+            voltage_pu: vec![vec![1.0, 0.9]],
+            frequency_hz: vec![60.0, 59.9],
+            event_times_s: vec![0.05],
+        };
+        let text = csv(&tr);
+        let lines: Vec<&str> = text.lines().collect();
+        assert_eq!(lines[0], "time_s,frequency_hz,angle_deg:G1,v_pu:7");
+        assert_eq!(lines.len(), 3);
+        assert!(lines[2].starts_with("0.100000,59.900000,2.0000,0.900000"));
+    }
+
+    #[test]
+    fn unknown_plot_extension_is_refused() {
+        let tr = Trajectory::default();
+        let e = plot::write_plot(Path::new("x.jpg"), "t", &tr, &[]).unwrap_err();
+        assert!(e.to_string().contains(".svg or .png"));
+    }
+}
