@@ -1,5 +1,5 @@
 //! Holdfast's shared foundation: the grid model, our grid file format, the IEEE Common Data Format
-//! importer, topology, and the AC power flow. The time-domain dynamic engine joins it next.
+//! importer, topology, the AC power flow and the time-domain dynamic engine.
 //!
 //! # Main types
 //! - [`Grid`]: a validated grid in per unit, with dense typed indices ([`BusIdx`], [`BranchIdx`],
@@ -9,6 +9,7 @@
 //! - [`cdf`]: import of IEEE Common Data Format files, including their solved voltages.
 //! - [`topology`]: the bus graph, the branch graph, islands and electrical distance.
 //! - [`powerflow`]: Newton-Raphson AC power flow on a sparse LU, with reactive limits and islands.
+//! - [`dynamics`]: time-domain simulation of contingencies with a stability verdict.
 //! - [`Outages`]: a mask of elements out of service for one study; elements are never removed.
 //!
 //! # Units and sign conventions

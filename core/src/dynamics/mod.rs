@@ -10,7 +10,7 @@
 //!   governor with valve limits and reheat; loads with voltage dependence (turning to constant
 //!   impedance below a threshold), frequency dependence and an induction-motor share; wind
 //!   plants as limited current sources with reactive current injection and ride-through trips.
-//! - The engine is described in [`engine`](self::engine); the classical reduced-network route of
+//! - The numerical method is described on [`Simulation`]; the classical reduced-network route of
 //!   the textbooks is kept in [`reduction`] for checks.
 
 mod engine;
