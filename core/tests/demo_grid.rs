@@ -76,3 +76,87 @@ fn every_single_branch_outage_solves() {
         );
     }
 }
+
+mod contingencies {
+    //! A design requirement of the demo grid (fictional, ours), not a physics check: its
+    //! bundled contingencies include one that is stable, one a modest shed saves and one that
+    //! no shed saves, so that the dataset and the advisor have all three kinds to learn from.
+
+    use holdfast_core::dynamics::{
+        Event, Scenario, SimulationOptions, TimedEvent, read_scenario, simulate,
+    };
+    use holdfast_core::powerflow::{PowerFlowOptions, solve};
+    use holdfast_core::{Grid, Outages, format};
+    use std::path::Path;
+
+    fn scenario(grid: &Grid, name: &str) -> Scenario {
+        read_scenario(
+            &Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("../scenarios")
+                .join(name),
+            grid,
+        )
+        .unwrap()
+    }
+
+    fn stable(grid: &Grid, s: &Scenario) -> bool {
+        let pf = solve(grid, &Outages::none(), &PowerFlowOptions::default())
+            .converged()
+            .unwrap();
+        simulate(
+            grid,
+            &Outages::none(),
+            &pf,
+            s,
+            &SimulationOptions::default(),
+        )
+        .unwrap()
+        .verdict
+        .is_stable()
+    }
+
+    /// `s` with `share` of every load's shed-able power removed at `t_s`.
+    fn with_shed(grid: &Grid, s: &Scenario, t_s: f64, share: f64) -> Scenario {
+        let mut s = s.clone();
+        for l in grid.loads.iter().filter(|l| l.sheddable_fraction > 0.0) {
+            s.events.push(TimedEvent {
+                t_s,
+                event: Event::Shed {
+                    bus: l.bus,
+                    p_pu: share * l.sheddable_fraction * l.p_pu,
+                },
+            });
+        }
+        s
+    }
+
+    #[test]
+    fn demo_contingencies_are_stable_savable_and_unsavable() {
+        let grid = format::load_grid(
+            &Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/quillmoor.toml"),
+        )
+        .unwrap();
+        let fault = scenario(&grid, "quillmoor-fault.toml");
+        assert!(
+            stable(&grid, &fault),
+            "the City North fault is meant to be stable"
+        );
+
+        let wind = scenario(&grid, "quillmoor-wind-loss.toml");
+        assert!(
+            !stable(&grid, &wind),
+            "losing Windrise is meant to need action"
+        );
+        // A modest shed: a quarter of the shed-able load (about 170 MW of 2,400) at 0.35 s.
+        assert!(stable(&grid, &with_shed(&grid, &wind, 0.35, 0.25)));
+
+        let stuck = scenario(&grid, "quillmoor-breaker-failure.toml");
+        assert!(!stable(&grid, &stuck));
+        for share in [0.25, 0.5, 1.0] {
+            assert!(
+                !stable(&grid, &with_shed(&grid, &stuck, 0.5, share)),
+                "no shed saves the breaker-failure case (share {share})"
+            );
+        }
+    }
+}

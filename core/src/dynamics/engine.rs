@@ -56,7 +56,8 @@ pub struct SimulationOptions {
     pub duration_s: f64,
     /// Machine models to use.
     pub machine_model: MachineModelChoice,
-    /// Newton tolerance on the largest residual (pu current, or state units), default 1e-8.
+    /// Newton tolerance on the largest residual (pu current, or state units), default 1e-6
+    /// (common practice, DOMAIN.md 6.2).
     pub tolerance: f64,
     /// Most Newton iterations in one step before the step is declared failed.
     pub max_iterations: usize,
@@ -83,7 +84,7 @@ impl Default for SimulationOptions {
             step_s: None,
             duration_s: 10.0,
             machine_model: MachineModelChoice::Detailed,
-            tolerance: 1e-8,
+            tolerance: 1e-6,
             max_iterations: 20,
             refresh_after_iterations: 3,
             load_to_impedance_below: 0.7,
@@ -169,8 +170,9 @@ struct Slot {
     active: bool,
 }
 
-/// The eliminated Jacobian of one device: `A^-1`, `A^-1 B`, `C` and the Schur block
-/// `D - C A^-1 B` (all row-major).
+/// The eliminated Jacobian of one device: `A^-1` (stored column by column, so that products
+/// with it are sums of independent columns), `A^-1 B`, `C` and the Schur block `D - C A^-1 B`
+/// (row-major).
 #[derive(Clone, Debug, Default)]
 struct DeviceJacobian {
     a_inv: Vec<f64>,
@@ -644,10 +646,11 @@ impl<'g> Simulation<'g> {
             if !invert(&mut a_mat, &mut jac.a_inv, n) {
                 return false;
             }
+            transpose_in_place(&mut jac.a_inv, n);
             for i in 0..n {
                 for col in 0..2 {
                     jac.a_inv_b[i * 2 + col] = (0..n)
-                        .map(|m| jac.a_inv[i * n + m] * b_mat[m * 2 + col])
+                        .map(|m| jac.a_inv[m * n + i] * b_mat[m * 2 + col])
                         .sum();
                 }
             }
@@ -741,8 +744,12 @@ impl<'g> Simulation<'g> {
                     let n = s.n;
                     let r = &self.residual[s.offset..s.offset + n];
                     let out = &mut self.a_inv_r[s.offset..s.offset + n];
-                    for i in 0..n {
-                        out[i] = (0..n).map(|m| jac.a_inv[i * n + m] * r[m]).sum();
+                    out.fill(0.0);
+                    for m in 0..n {
+                        let column = &jac.a_inv[m * n..(m + 1) * n];
+                        for (o, a) in out.iter_mut().zip(column) {
+                            *o += a * r[m];
+                        }
                     }
                     let (cr, ci) = (0..n).fold((0.0, 0.0), |(cr, ci), m| {
                         (cr + jac.c[m] * out[m], ci + jac.c[n + m] * out[m])
@@ -1076,7 +1083,7 @@ impl<'g> Simulation<'g> {
 
     fn refresh_vmag(&mut self) {
         for (m, v) in self.vmag.iter_mut().zip(&self.v) {
-            *m = v.norm();
+            *m = v.norm_sqr().sqrt();
         }
     }
 
@@ -1210,6 +1217,14 @@ fn check_load_events(grid: &Grid, events: &[TimedEvent]) -> Result<(), Error> {
         }
     }
     Ok(())
+}
+
+fn transpose_in_place(a: &mut [f64], n: usize) {
+    for i in 0..n {
+        for j in i + 1..n {
+            a.swap(i * n + j, j * n + i);
+        }
+    }
 }
 
 /// Inverts the `n x n` row-major matrix `a` (destroyed) into `out` by Gauss-Jordan elimination

@@ -143,7 +143,7 @@ impl LoadDevice {
     /// Derivatives into `dx`; returns the current injected into the bus (negative of the load
     /// current), system pu.
     pub(crate) fn evaluate(&self, x: &[f64], v: Complex, dx: &mut [f64]) -> Complex {
-        let ratio = v.norm() / self.v0;
+        let ratio = v.norm_sqr().sqrt() / self.v0;
         let df = match self.t_filter_s {
             Some(t) => {
                 if ratio > FREQUENCY_BLIND_BELOW {
@@ -222,7 +222,7 @@ impl LoadDevice {
         let Some(trip) = m.data.under_voltage_trip else {
             return false;
         };
-        if v.norm() < trip.v_pu {
+        if v.norm_sqr().sqrt() < trip.v_pu {
             if m.below_since_s.is_nan() {
                 m.below_since_s = t_s;
             }

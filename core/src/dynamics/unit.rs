@@ -257,7 +257,8 @@ impl Unit {
         let id = (ra * (ed - vd) + xqq * (eq - vq)) / det;
         let iq = (ra * (eq - vq) - xdd * (ed - vd)) / det;
         let pe = vd * id + vq * iq + ra * (id * id + iq * iq);
-        let vt = v.norm();
+        // Magnitude by sqrt of the square: hypot's overflow care costs time and is not needed.
+        let vt = v.norm_sqr().sqrt();
         let efd = match &self.exciter {
             Some(e) => exciter_evaluate(e, x, vt, dx).0,
             None => self.efd0,

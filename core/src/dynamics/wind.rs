@@ -10,11 +10,29 @@ use crate::model::{RideThroughPoint, WindDynamics};
 
 /// Voltage measurement time constant, s (common practice, DOMAIN.md 5.2).
 const T_MEASURE_S: f64 = 0.02;
-/// Below this terminal voltage the current's angle reference is held in proportion to the
-/// voltage itself, so the injection stays smooth through a bolted fault.
+/// Around and below this terminal voltage the current's magnitude is scaled down with the
+/// voltage (smoothly), so the injection stays continuous and differentiable through a bolted
+/// fault.
 const V_ANGLE_FLOOR_PU: f64 = 0.05;
 /// Smallest measured voltage used to turn power orders into current orders, pu.
 const V_ORDER_FLOOR_PU: f64 = 0.01;
+
+/// Terminal voltages between which the active current is scaled back, pu: none below the
+/// first, all of it above the second (the low-voltage active-current management of generic
+/// converter models; values of common practice, DOMAIN.md 5.2).
+const ACTIVE_CURRENT_ZERO_BELOW_PU: f64 = 0.4;
+const ACTIVE_CURRENT_FULL_ABOVE_PU: f64 = 0.8;
+
+/// Share of the active current a converter delivers at terminal voltage `v`: 0 below 0.4 pu, 1
+/// above 0.8 pu, a smooth step between (continuously differentiable, for Newton). Without it
+/// an ideal current source would push active current into a short circuit, a state the
+/// phasor equations have no solution for.
+fn low_voltage_active_share(v: f64) -> f64 {
+    let x = ((v - ACTIVE_CURRENT_ZERO_BELOW_PU)
+        / (ACTIVE_CURRENT_FULL_ABOVE_PU - ACTIVE_CURRENT_ZERO_BELOW_PU))
+        .clamp(0.0, 1.0);
+    x * x * (3.0 - 2.0 * x)
+}
 
 /// A wind plant device, currents in pu of the plant's rating.
 #[derive(Clone, Debug)]
@@ -138,7 +156,7 @@ impl WindDevice {
             dx[..3].fill(0.0);
             return Complex::new(0.0, 0.0);
         }
-        let vmag = v.norm();
+        let vmag = v.norm_sqr().sqrt();
         let (vm, ip, iq) = (x[0], x[1], x[2]);
         dx[0] = (vmag - vm) / T_MEASURE_S;
         let (ip_cmd, iq_cmd) = self.orders(vm);
@@ -149,8 +167,16 @@ impl WindDevice {
             (ip_cmd - ip) / t
         };
         dx[2] = (iq_cmd - iq) / t;
-        let unit = v / vmag.max(V_ANGLE_FLOOR_PU);
-        Complex::new(ip, -iq) * unit * self.rating
+        // The current follows the voltage's angle, v / |v|; below the floor a, v (2a - |v|) / a^2,
+        // which meets it with the same value and slope at a, so the injection is continuously
+        // differentiable through a close fault (a kink there made Newton cycle).
+        let a = V_ANGLE_FLOOR_PU;
+        let unit = if vmag >= a {
+            v / vmag
+        } else {
+            v * ((2.0 * a - vmag) / (a * a))
+        };
+        Complex::new(ip * low_voltage_active_share(vmag), -iq) * unit * self.rating
     }
 
     /// After an accepted step at time `t_s`: updates the control mode and the ride-through
@@ -193,5 +219,21 @@ impl WindDevice {
             }
         }
         changed
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn active_current_share_is_a_smooth_step() {
+        assert_eq!(low_voltage_active_share(0.3), 0.0);
+        assert_eq!(low_voltage_active_share(0.9), 1.0);
+        assert!((low_voltage_active_share(0.6) - 0.5).abs() < 1e-12);
+        // Zero slope at both ends (continuously differentiable).
+        let slope =
+            |v: f64| (low_voltage_active_share(v + 1e-7) - low_voltage_active_share(v)) / 1e-7;
+        assert!(slope(0.4).abs() < 1e-5 && slope(0.8 - 1e-7).abs() < 1e-5);
     }
 }
