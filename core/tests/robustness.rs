@@ -11,6 +11,7 @@ use proptest::prelude::*;
 
 const DEMO: &str = include_str!("../../scenarios/quillmoor.toml");
 const IEEE14: &str = include_str!("../../tests/data/ieee14cdf.txt");
+const DEMO_FAULT: &str = include_str!("../../scenarios/quillmoor-fault.toml");
 
 /// Replaces the byte at `pos` (if any) with `b`, keeping the text valid UTF-8 where possible.
 fn mutate(text: &str, pos: usize, b: u8) -> String {
@@ -33,6 +34,16 @@ fn truncate(text: &str, pos: usize) -> &str {
 
 proptest! {
     #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn scenario_parsers_never_panic(s in "\\PC{0,200}", pos in 0usize..2000, b in any::<u8>()) {
+        let grid = format::parse_grid(DEMO, Path::new("demo.toml")).unwrap();
+        let _ = holdfast_core::dynamics::parse_scenario(&s, Path::new("random.toml"), &grid);
+        let _ = holdfast_core::dynamics::parse_event_line(&grid, &s);
+        let mutated = mutate(DEMO_FAULT, pos, b);
+        let _ = holdfast_core::dynamics::parse_scenario(&mutated, Path::new("m.toml"), &grid);
+        let _ = holdfast_core::dynamics::parse_scenario(truncate(DEMO_FAULT, pos), Path::new("t.toml"), &grid);
+    }
 
     #[test]
     fn grid_loader_never_panics_on_random_text(s in "\\PC{0,400}") {
@@ -104,5 +115,41 @@ proptest! {
             prop_assert!((a.v_pu[i] - b.v_pu[j]).abs() < 1e-9);
             prop_assert!((a.angle_rad[i] - b.angle_rad[j]).abs() < 1e-9);
         }
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 24, ..ProptestConfig::default() })]
+
+    /// Simulations of random faults and trips on the demo grid end with a verdict (stable,
+    /// unstable or numerical failure), never a panic.
+    #[test]
+    fn simulation_never_panics_on_random_contingencies(
+        bus in 0usize..32,
+        x_pu in prop_oneof![Just(1e-6), 1e-4f64..0.5],
+        clear_s in 0.11f64..0.6,
+        branch in 0usize..51,
+        shed_share in 0.0f64..1.0,
+    ) {
+        use holdfast_core::dynamics::{Event, Scenario, SimulationOptions, TimedEvent, simulate};
+        let grid = format::parse_grid(DEMO, Path::new("demo.toml")).unwrap();
+        let pf = solve(&grid, &Outages::none(), &PowerFlowOptions::default()).converged().unwrap();
+        let bus = holdfast_core::BusIdx((bus % grid.n_buses()) as u32);
+        let branch = holdfast_core::BranchIdx((branch % grid.branches.len()) as u32);
+        let mut events = vec![
+            TimedEvent { t_s: 0.1, event: Event::Fault { bus, r_pu: 0.0, x_pu } },
+            TimedEvent { t_s: clear_s, event: Event::ClearFault { bus } },
+            TimedEvent { t_s: clear_s, event: Event::TripBranch(branch) },
+        ];
+        for l in &grid.loads {
+            events.push(TimedEvent {
+                t_s: clear_s + 0.1,
+                event: Event::Shed { bus: l.bus, p_pu: shed_share * l.p_pu },
+            });
+        }
+        let options = SimulationOptions { duration_s: 1.5, ..SimulationOptions::default() };
+        let scenario = Scenario { name: "random".into(), events };
+        let result = simulate(&grid, &Outages::none(), &pf, &scenario, &options);
+        prop_assert!(result.is_ok(), "{:?}", result.err());
     }
 }

@@ -353,3 +353,110 @@ fn line_col(text: &str, offset: usize) -> (usize, usize) {
     let column = before.len() - before.rfind('\n').map_or(0, |p| p + 1) + 1;
     (line, column)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::format::parse_grid;
+
+    const GRID: &str = r#"
+format_version = 1
+name = "two buses"
+s_base_mva = 100.0
+frequency_hz = 50.0
+[[bus]]
+id = 1
+base_kv = 230.0
+reference = true
+[[bus]]
+id = 2
+base_kv = 230.0
+[[line]]
+id = "the line"
+from = 1
+to = 2
+x_pu = 0.1
+[[machine]]
+id = "G"
+bus = 1
+p_mw = 0.0
+v_set_pu = 1.0
+rating_mva = 200.0
+[[load]]
+id = "D"
+bus = 2
+p_mw = 50.0
+"#;
+
+    fn grid() -> Grid {
+        parse_grid(GRID, Path::new("g.toml")).unwrap()
+    }
+
+    #[test]
+    fn scenario_file_and_event_lines_give_the_same_events() {
+        let g = grid();
+        let text = r#"
+name = "s"
+[[event]]
+at_s = 0.1
+action = "fault"
+bus = 2
+[[event]]
+at_s = 0.2
+action = "clear_fault"
+bus = 2
+[[event]]
+at_s = 0.2
+action = "trip"
+id = "the line"
+[[event]]
+at_s = 0.5
+action = "shed"
+bus = 2
+mw = 10.0
+"#;
+        let s = parse_scenario(text, Path::new("s.toml"), &g).unwrap();
+        let lines = [
+            "0.1 fault 2",
+            "0.2 clear 2",
+            "0.2 trip the line",
+            "0.5 shed 2 10",
+        ];
+        let parsed: Vec<TimedEvent> = lines
+            .iter()
+            .map(|l| parse_event_line(&g, l).unwrap())
+            .collect();
+        assert_eq!(s.events, parsed);
+        assert_eq!(s.last_clearing_s(), Some(0.2));
+    }
+
+    #[test]
+    fn scenario_errors_name_line_field_and_value() {
+        let g = grid();
+        let text = "name = \"bad\"\n[[event]]\nat_s = 0.1\naction = \"fault\"\nbus = 7\n\
+                    [[event]]\nat_s = 0.2\naction = \"explode\"\n";
+        let Err(Error::Invalid { path, problems }) = parse_scenario(text, Path::new("s.toml"), &g)
+        else {
+            panic!("expected a list of problems");
+        };
+        assert_eq!(path, Path::new("s.toml"));
+        assert_eq!(problems.len(), 2);
+        assert_eq!(problems[0].line, Some(2));
+        assert_eq!(problems[0].field.as_deref(), Some("bus"));
+        assert_eq!(problems[0].value.as_deref(), Some("7"));
+        assert_eq!(problems[1].field.as_deref(), Some("action"));
+        assert!(
+            problems[1].message.contains("clear_fault"),
+            "{}",
+            problems[1]
+        );
+        // Syntax errors carry the position.
+        let e = parse_scenario("[[event]]\nat_s = \n", Path::new("s.toml"), &g).unwrap_err();
+        assert!(matches!(e, Error::Syntax { line: 2, .. }), "{e}");
+        // One-line events name the offending word.
+        let e = parse_event_line(&g, "0.1 shed 2 lots").unwrap_err();
+        assert!(e.contains("\"lots\""), "{e}");
+        assert!(parse_event_line(&g, "0.1 trip nothing").is_err());
+        assert!(parse_event_line(&g, "-1 clear 2").is_err());
+    }
+}
