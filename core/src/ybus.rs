@@ -129,11 +129,14 @@ impl AdmittanceMatrix {
     /// `I = Y V`, written into `current`.
     pub fn multiply(&self, v: &[Complex], current: &mut [Complex]) {
         for (i, out) in current.iter_mut().enumerate().take(self.n) {
-            let mut acc = Complex::new(0.0, 0.0);
-            for p in self.row_ptr[i]..self.row_ptr[i + 1] {
-                acc += self.values[p] * v[self.col_idx[p]];
+            let row = self.row_ptr[i]..self.row_ptr[i + 1];
+            let (mut re, mut im) = (0.0, 0.0);
+            for (y, &j) in self.values[row.clone()].iter().zip(&self.col_idx[row]) {
+                let x = v[j];
+                re += y.re * x.re - y.im * x.im;
+                im += y.re * x.im + y.im * x.re;
             }
-            *out = acc;
+            *out = Complex::new(re, im);
         }
     }
 }

@@ -184,7 +184,16 @@ impl LoadDevice {
             } else {
                 let slip = x[k];
                 let (te, i_motor) = air_gap(&m.data, slip, v);
-                let tl = m.t0 * (1.0 - slip).max(0.0).powf(m.data.torque_exponent);
+                let speed = (1.0 - slip).max(0.0);
+                let e = m.data.torque_exponent;
+                let tl = m.t0
+                    * if e == 0.0 {
+                        1.0
+                    } else if e == 2.0 {
+                        speed * speed
+                    } else {
+                        speed.powf(e)
+                    };
                 // A stalled motor stays at standstill: slip is held at 1.
                 dx[k] = non_windup_upper(slip, (tl - te) / (2.0 * m.data.h_s), 1.0);
                 current -= i_motor * m.rating;
@@ -244,6 +253,10 @@ fn non_windup_upper(x: f64, dx: f64, hi: f64) -> f64 {
 /// Wraps an angle difference into `(-pi, pi]`.
 pub(crate) fn wrap_angle(a: f64) -> f64 {
     use std::f64::consts::{PI, TAU};
+    if (-PI..=PI).contains(&a) {
+        // The usual case (a small measurement error): no division needed.
+        return a;
+    }
     let w = a.rem_euclid(TAU);
     if w > PI { w - TAU } else { w }
 }
