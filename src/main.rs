@@ -48,7 +48,7 @@ enum Command {
     #[command(verbatim_doc_comment)]
     Simulate(simulate::SimulateArgs),
     /// Run the pipeline on the bundled demo grid (today: check it and solve it at light,
-    /// nominal and peak load).
+    /// nominal and peak load, then simulate its bundled contingencies with and without a shed).
     ///
     /// Example: holdfast demo
     Demo,
@@ -291,13 +291,93 @@ fn demo(out: &mut impl Write) -> Result<()> {
         report::summary(out, &scaled, &sol, &Outages::none(), DEMO_GRID_NAME, scale)?;
         writeln!(out)?;
     }
+    demo_contingencies(out, &grid)?;
     writeln!(
         out,
-        "Next steps in the pipeline (time-domain simulation, datasets, training, advice)"
+        "Next steps in the pipeline (datasets, training, advice) are being built; see the"
     )?;
-    writeln!(out, "are being built; see the issues and DEVELOPERS.md.")?;
+    writeln!(out, "issues and DEVELOPERS.md.")?;
     writeln!(out)?;
     writeln!(out, "{}", report::CAUTION)?;
+    Ok(())
+}
+
+/// The demo grid's bundled contingencies (invented, in `scenarios/`), simulated at nominal load.
+const DEMO_SCENARIOS: [(&str, &str); 3] = [
+    (
+        "scenarios/quillmoor-fault.toml",
+        include_str!("../scenarios/quillmoor-fault.toml"),
+    ),
+    (
+        "scenarios/quillmoor-wind-loss.toml",
+        include_str!("../scenarios/quillmoor-wind-loss.toml"),
+    ),
+    (
+        "scenarios/quillmoor-breaker-failure.toml",
+        include_str!("../scenarios/quillmoor-breaker-failure.toml"),
+    ),
+];
+
+fn demo_contingencies(out: &mut impl Write, grid: &Grid) -> Result<()> {
+    use holdfast_core::dynamics::{Event, SimulationOptions, TimedEvent, parse_scenario, simulate};
+    writeln!(
+        out,
+        "=== contingencies at nominal load: 10 s of dynamics each, half-cycle steps ==="
+    )?;
+    let pf = solve(grid, &Outages::none(), &PowerFlowOptions::default()).converged()?;
+    let options = SimulationOptions::default();
+    let verdict = |s: &holdfast_core::dynamics::Scenario| -> Result<(String, f64)> {
+        let started = std::time::Instant::now();
+        let r = simulate(grid, &Outages::none(), &pf, s, &options)?;
+        let ms = started.elapsed().as_secs_f64() * 1e3;
+        Ok((
+            match &r.verdict.failure {
+                None => "STABLE".to_string(),
+                Some(f) => format!(
+                    "UNSTABLE ({} at {:.2} s, {})",
+                    f.criterion, f.time_s, f.location
+                ),
+            },
+            ms,
+        ))
+    };
+    for (name, text) in DEMO_SCENARIOS {
+        let scenario = parse_scenario(text, Path::new(name), grid)?;
+        let (v, ms) = verdict(&scenario)?;
+        writeln!(out, "{}: {v} [{ms:.0} ms]", scenario.name)?;
+        if !v.starts_with("STABLE") {
+            // Try a quarter of every load's shed-able power, 0.25 s after the last event.
+            let mut shed = scenario.clone();
+            let t = scenario.events.iter().map(|e| e.t_s).fold(0.0, f64::max) + 0.25;
+            let mut total_mw = 0.0;
+            for l in grid
+                .loads
+                .iter()
+                .filter(|l| l.in_service && l.sheddable_fraction > 0.0)
+            {
+                let p = 0.25 * l.sheddable_fraction * l.p_pu;
+                total_mw += p * grid.s_base_mva;
+                shed.events.push(TimedEvent {
+                    t_s: t,
+                    event: Event::Shed {
+                        bus: l.bus,
+                        p_pu: p,
+                    },
+                });
+            }
+            let (v, ms) = verdict(&shed)?;
+            writeln!(
+                out,
+                "  with {total_mw:.0} MW shed at {t:.2} s (a quarter of the shed-able load): {v} [{ms:.0} ms]"
+            )?;
+        }
+    }
+    writeln!(
+        out,
+        "(try: holdfast simulate {DEMO_GRID_NAME} --scenario {} --plot run.svg)",
+        DEMO_SCENARIOS[0].0
+    )?;
+    writeln!(out)?;
     Ok(())
 }
 

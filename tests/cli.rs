@@ -125,6 +125,13 @@ fn demo_checks_the_demo_grid_at_three_load_levels_with_the_caution() {
     }
     assert!(s.contains("fictional"));
     assert!(s.contains("not a protection scheme") && s.contains("licensed engineers"));
+    // The bundled contingencies, one of each kind (checked in core/tests/demo_grid.rs).
+    assert!(
+        s.contains("City North fault, one North Hub line lost: STABLE"),
+        "{s}"
+    );
+    assert!(s.contains("shed-able load): STABLE"), "{s}");
+    assert!(s.contains("rotor-angle separation"), "{s}");
 }
 
 #[test]
