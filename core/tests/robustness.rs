@@ -151,5 +151,11 @@ proptest! {
         let scenario = Scenario { name: "random".into(), events };
         let result = simulate(&grid, &Outages::none(), &pf, &scenario, &options);
         prop_assert!(result.is_ok(), "{:?}", result.err());
+        // Events built by hand with indices from another grid are an error, not a panic.
+        let foreign = Scenario {
+            name: "foreign".into(),
+            events: vec![TimedEvent { t_s: 0.1, event: Event::ClearFault { bus: holdfast_core::BusIdx(9999) } }],
+        };
+        prop_assert!(simulate(&grid, &Outages::none(), &pf, &foreign, &options).is_err());
     }
 }

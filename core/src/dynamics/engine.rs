@@ -375,7 +375,7 @@ impl<'g> Simulation<'g> {
 
         let mut events = scenario.events.clone();
         events.sort_by(|a, b| a.t_s.total_cmp(&b.t_s));
-        check_load_events(grid, &events)?;
+        check_events(grid, &events)?;
 
         let load_buses = load_buses(grid, pf);
         let criteria = options
@@ -480,7 +480,7 @@ impl<'g> Simulation<'g> {
                 e.t_s, self.t
             )));
         }
-        check_load_events(self.grid, events)?;
+        check_events(self.grid, events)?;
         let mut pending: Vec<TimedEvent> = self.events.drain(self.next_event..).collect();
         pending.extend_from_slice(events);
         pending.sort_by(|a, b| a.t_s.total_cmp(&b.t_s));
@@ -1205,8 +1205,33 @@ fn load_buses(grid: &Grid, pf: &PowerFlowSolution) -> Vec<(usize, u32, f64)> {
         .collect()
 }
 
-/// Shed and load-step amounts must fit the load at their bus.
-fn check_load_events(grid: &Grid, events: &[TimedEvent]) -> Result<(), Error> {
+/// Every event must name elements of this grid, at a finite time; shed and load-step amounts
+/// must fit the load at their bus.
+fn check_events(grid: &Grid, events: &[TimedEvent]) -> Result<(), Error> {
+    for e in events {
+        let fits = match e.event {
+            Event::Fault { bus, r_pu, x_pu } => {
+                bus.get() < grid.n_buses()
+                    && r_pu >= 0.0
+                    && x_pu >= 0.0
+                    && r_pu + x_pu > 0.0
+                    && (r_pu + x_pu).is_finite()
+            }
+            Event::ClearFault { bus } => bus.get() < grid.n_buses(),
+            Event::LoadStep { bus, p_pu } | Event::Shed { bus, p_pu } => {
+                bus.get() < grid.n_buses() && p_pu.is_finite()
+            }
+            Event::TripBranch(k) => k.get() < grid.branches.len(),
+            Event::TripMachine(k) => k.get() < grid.machines.len(),
+            Event::TripWind(k) => k.get() < grid.wind_plants.len(),
+        };
+        if !fits || !e.t_s.is_finite() {
+            return Err(Error::Dynamics(format!(
+                "event at {} s does not fit this grid: {:?}",
+                e.t_s, e.event
+            )));
+        }
+    }
     for e in events {
         let (bus, p, shed) = match e.event {
             Event::Shed { bus, p_pu } => (bus, p_pu, true),
