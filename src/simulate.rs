@@ -44,6 +44,10 @@ pub(crate) struct SimulateArgs {
     /// Write the signals (time, frequency, rotor angles, bus voltages) to a CSV file.
     #[arg(long, value_name = "FILE.csv")]
     pub(crate) out: Option<PathBuf>,
+    /// Voltages to write and plot, by bus number (repeatable; default: every bus in the CSV,
+    /// the load buses in the plot).
+    #[arg(long = "bus", value_name = "BUS")]
+    pub(crate) buses: Vec<u32>,
     /// Draw rotor angles, load-bus voltages and frequency to an .svg or .png file.
     #[arg(long, value_name = "FILE.svg|FILE.png")]
     pub(crate) plot: Option<PathBuf>,
@@ -111,11 +115,22 @@ pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
         record: args.out.is_some() || args.plot.is_some(),
         ..SimulationOptions::default()
     };
+    let chosen: Vec<usize> = args
+        .buses
+        .iter()
+        .map(|&n| {
+            grid.bus_idx(n)
+                .map(|b| b.get())
+                .with_context(|| format!("--bus {n}: no bus has this number"))
+        })
+        .collect::<Result<_>>()?;
     let started = Instant::now();
     let result = simulate(&grid, &outages, &pf, &scenario, &options)?;
     let wall_ms = started.elapsed().as_secs_f64() * 1e3;
     if let (Some(path), Some(tr)) = (&args.out, &result.trajectory) {
-        write_atomically(path, csv(tr).as_bytes())?;
+        let all: Vec<usize> = (0..grid.n_buses()).collect();
+        let buses = if chosen.is_empty() { &all } else { &chosen };
+        write_atomically(path, csv(tr, buses).as_bytes())?;
     }
     if let (Some(path), Some(tr)) = (&args.plot, &result.trajectory) {
         let title = format!(
@@ -127,7 +142,12 @@ pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
                 &scenario.name
             }
         );
-        plot::write_plot(path, &title, tr, &load_bus_positions(&grid))
+        let buses = if chosen.is_empty() {
+            load_bus_positions(&grid)
+        } else {
+            chosen.clone()
+        };
+        plot::write_plot(path, &title, tr, &buses)
             .with_context(|| format!("plot {}", path.display()))?;
     }
     if args.json {
@@ -338,14 +358,15 @@ fn json(result: &SimulationResult, wall_ms: f64) -> VerdictReport {
     }
 }
 
-/// The trajectory as CSV: time, frequency, then one column per machine angle and bus voltage.
-fn csv(tr: &Trajectory) -> String {
+/// The trajectory as CSV: time, frequency, then one column per machine angle and one per
+/// chosen bus voltage (`buses`: positions in the trajectory's bus list).
+fn csv(tr: &Trajectory, buses: &[usize]) -> String {
     let mut s = String::from("time_s,frequency_hz");
     for m in &tr.machines {
         s += &format!(",angle_deg:{}", m.replace(',', ";"));
     }
-    for b in &tr.buses {
-        s += &format!(",v_pu:{b}");
+    for &b in buses {
+        s += &format!(",v_pu:{}", tr.buses[b]);
     }
     s.push('\n');
     for k in 0..tr.time_s.len() {
@@ -353,8 +374,8 @@ fn csv(tr: &Trajectory) -> String {
         for a in &tr.angle_deg {
             s += &format!(",{:.4}", a[k]);
         }
-        for v in &tr.voltage_pu {
-            s += &format!(",{:.6}", v[k]);
+        for &b in buses {
+            s += &format!(",{:.6}", tr.voltage_pu[b][k]);
         }
         s.push('\n');
     }
@@ -377,7 +398,7 @@ mod tests {
             frequency_hz: vec![60.0, 59.9],
             event_times_s: vec![0.05],
         };
-        let text = csv(&tr);
+        let text = csv(&tr, &[0]);
         let lines: Vec<&str> = text.lines().collect();
         assert_eq!(lines[0], "time_s,frequency_hz,angle_deg:G1,v_pu:7");
         assert_eq!(lines.len(), 3);

@@ -212,11 +212,26 @@ fn simulate_reports_a_verdict_and_writes_signals_and_plots() {
         "0.1833 clear 303",
         "--duration",
         "2",
+        "--bus",
+        "221",
+        "--bus",
+        "303",
+        "--out",
+        csv.to_str().unwrap(),
         "--plot",
         png.to_str().unwrap(),
         "--json",
     ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
+    let header = std::fs::read_to_string(&csv).unwrap();
+    assert!(
+        header
+            .lines()
+            .next()
+            .unwrap()
+            .ends_with(",v_pu:221,v_pu:303"),
+        "{header}"
+    );
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert!(v["stable"].is_boolean() && v["max_angle_deg"].as_f64().unwrap() > 0.0);
     assert_eq!(&std::fs::read(&png).unwrap()[1..4], b"PNG");
