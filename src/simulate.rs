@@ -143,7 +143,7 @@ pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
             }
         );
         let buses = if chosen.is_empty() {
-            load_bus_positions(&grid)
+            grid.load_buses().into_iter().map(|b| b.get()).collect()
         } else {
             chosen.clone()
         };
@@ -167,19 +167,6 @@ pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
         writeln!(out, "{CAUTION}")?;
     }
     Ok(())
-}
-
-/// Positions (in the grid's bus order) of the buses that carry load.
-fn load_bus_positions(grid: &Grid) -> Vec<usize> {
-    let mut buses: Vec<usize> = grid
-        .loads
-        .iter()
-        .filter(|l| l.in_service && l.p_pu > 0.0)
-        .map(|l| l.bus.get())
-        .collect();
-    buses.sort_unstable();
-    buses.dedup();
-    buses
 }
 
 fn describe(grid: &Grid, e: &Event) -> String {

@@ -130,6 +130,33 @@ impl Grid {
         &self.buses[idx.get()]
     }
 
+    /// The branch, machine or wind plant with this id (looked up in that order).
+    pub fn element(&self, id: &str) -> Option<Element> {
+        if let Some(k) = self.branches.iter().position(|b| b.id == id) {
+            Some(Element::Branch(BranchIdx(k as u32)))
+        } else if let Some(k) = self.machines.iter().position(|m| m.id == id) {
+            Some(Element::Machine(MachineIdx(k as u32)))
+        } else {
+            self.wind_plants
+                .iter()
+                .position(|w| w.id == id)
+                .map(|k| Element::Wind(WindIdx(k as u32)))
+        }
+    }
+
+    /// Buses with in-service demand (a load drawing active power), in bus order, each once.
+    pub fn load_buses(&self) -> Vec<BusIdx> {
+        let mut buses: Vec<BusIdx> = self
+            .loads
+            .iter()
+            .filter(|l| l.in_service && l.p_pu > 0.0)
+            .map(|l| l.bus)
+            .collect();
+        buses.sort_unstable();
+        buses.dedup();
+        buses
+    }
+
     /// Total load of in-service loads, MW and Mvar, at nominal voltage.
     pub fn total_load_mw_mvar(&self) -> (f64, f64) {
         self.loads
@@ -139,6 +166,17 @@ impl Grid {
                 (p + l.p_pu * self.s_base_mva, q + l.q_pu * self.s_base_mva)
             })
     }
+}
+
+/// An element that can be taken out of service or tripped, by index.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Element {
+    /// A line or transformer.
+    Branch(BranchIdx),
+    /// A synchronous machine.
+    Machine(MachineIdx),
+    /// A wind plant.
+    Wind(WindIdx),
 }
 
 /// A bus (node) of the grid.
@@ -575,14 +613,11 @@ impl Outages {
         let mut out = Outages::default();
         for id in ids {
             let id = id.as_ref();
-            if let Some(k) = grid.branches.iter().position(|b| b.id == id) {
-                out.branches.push(BranchIdx(k as u32));
-            } else if let Some(k) = grid.machines.iter().position(|m| m.id == id) {
-                out.machines.push(MachineIdx(k as u32));
-            } else if let Some(k) = grid.wind_plants.iter().position(|w| w.id == id) {
-                out.wind_plants.push(WindIdx(k as u32));
-            } else {
-                return Err(crate::Error::UnknownElement { id: id.to_string() });
+            match grid.element(id) {
+                Some(Element::Branch(k)) => out.branches.push(k),
+                Some(Element::Machine(k)) => out.machines.push(k),
+                Some(Element::Wind(k)) => out.wind_plants.push(k),
+                None => return Err(crate::Error::UnknownElement { id: id.to_string() }),
             }
         }
         Ok(out)

@@ -1191,16 +1191,10 @@ enum Which {
 /// Load buses for the voltage criteria: buses with in-service, energised demand, with their
 /// pre-contingency voltage.
 fn load_buses(grid: &Grid, pf: &PowerFlowSolution) -> Vec<(usize, u32, f64)> {
-    let mut buses: Vec<usize> = grid
-        .loads
-        .iter()
-        .filter(|l| l.in_service && l.p_pu > 0.0 && pf.energised[l.bus.get()])
-        .map(|l| l.bus.get())
-        .collect();
-    buses.sort_unstable();
-    buses.dedup();
-    buses
+    grid.load_buses()
         .into_iter()
+        .map(BusIdx::get)
+        .filter(|&b| pf.energised[b])
         .map(|b| (b, grid.buses[b].number, pf.v_pu[b]))
         .collect()
 }

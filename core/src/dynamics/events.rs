@@ -6,7 +6,7 @@ use std::path::Path;
 use serde::Deserialize;
 use toml::Spanned;
 
-use crate::model::{BranchIdx, BusIdx, Grid, MachineIdx, WindIdx};
+use crate::model::{BranchIdx, BusIdx, Element, Grid, MachineIdx, WindIdx};
 use crate::{Error, Problem};
 
 /// Default fault reactance of a "bolted" fault, pu: small but never zero (common practice,
@@ -122,19 +122,12 @@ pub fn read_scenario(path: &Path, grid: &Grid) -> Result<Scenario, Error> {
 
 /// Parses a scenario from TOML text (`path` names it in messages).
 pub fn parse_scenario(text: &str, path: &Path, grid: &Grid) -> Result<Scenario, Error> {
-    let file: FileIn = toml::from_str(text).map_err(|e| {
-        let (line, column) = e.span().map(|s| line_col(text, s.start)).unwrap_or((1, 1));
-        Error::Syntax {
-            path: path.to_path_buf(),
-            line,
-            column,
-            message: e.message().to_string(),
-        }
-    })?;
+    let file: FileIn =
+        toml::from_str(text).map_err(|e| crate::format::syntax_error(text, path, &e))?;
     let mut problems = Vec::new();
     let mut events = Vec::new();
     for rec in &file.event {
-        let line = line_col(text, rec.span().start).0;
+        let line = crate::format::line_col(text, rec.span().start).0;
         let r = rec.get_ref();
         let record = format!("event at {} s", r.at_s);
         let problem = |field: &str, value: &dyn std::fmt::Display, message: &str| {
@@ -259,16 +252,11 @@ pub fn parse_scenario(text: &str, path: &Path, grid: &Grid) -> Result<Scenario, 
 }
 
 fn trip_event(grid: &Grid, id: &str) -> Option<Event> {
-    if let Some(k) = grid.branches.iter().position(|b| b.id == id) {
-        Some(Event::TripBranch(BranchIdx(k as u32)))
-    } else if let Some(k) = grid.machines.iter().position(|m| m.id == id) {
-        Some(Event::TripMachine(MachineIdx(k as u32)))
-    } else {
-        grid.wind_plants
-            .iter()
-            .position(|w| w.id == id)
-            .map(|k| Event::TripWind(WindIdx(k as u32)))
-    }
+    Some(match grid.element(id)? {
+        Element::Branch(k) => Event::TripBranch(k),
+        Element::Machine(k) => Event::TripMachine(k),
+        Element::Wind(k) => Event::TripWind(k),
+    })
 }
 
 /// Parses a one-line event: `TIME ACTION ARGS`, with actions
@@ -345,13 +333,6 @@ pub fn parse_event_line(grid: &Grid, line: &str) -> Result<TimedEvent, String> {
         _ => return Err(format!("event \"{line}\": {usage}")),
     };
     Ok(TimedEvent { t_s, event })
-}
-
-fn line_col(text: &str, offset: usize) -> (usize, usize) {
-    let before = &text[..offset.min(text.len())];
-    let line = before.matches('\n').count() + 1;
-    let column = before.len() - before.rfind('\n').map_or(0, |p| p + 1) + 1;
-    (line, column)
 }
 
 #[cfg(test)]

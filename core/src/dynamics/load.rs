@@ -3,7 +3,7 @@
 //! the shunt that reconciles the motor's reactive draw with the power-flow value.
 
 use crate::Complex;
-use crate::model::{Load, MotorData};
+use crate::model::{Load, MotorData, VoltageDependence};
 
 /// Below this share of its initial voltage a load's frequency measurement is frozen: the
 /// angle of a collapsed voltage carries no frequency information (common practice for
@@ -31,12 +31,7 @@ pub(crate) struct LoadDevice {
     q0: f64,
     /// Initial voltage magnitude, pu.
     v0: f64,
-    p_z: f64,
-    p_i: f64,
-    p_p: f64,
-    q_z: f64,
-    q_i: f64,
-    q_p: f64,
+    zip: VoltageDependence,
     k_pf: f64,
     k_qf: f64,
     /// Share of `v0` below which constant-current and constant-power parts become constant
@@ -107,17 +102,11 @@ impl LoadDevice {
             });
             x.push(slip);
         }
-        let vd = load.voltage_dependence;
         let dev = LoadDevice {
             p0: (1.0 - share) * load.p_pu,
             q0: (1.0 - share) * load.q_pu,
             v0,
-            p_z: vd.p_z,
-            p_i: vd.p_i,
-            p_p: vd.p_p,
-            q_z: vd.q_z,
-            q_i: vd.q_i,
-            q_p: vd.q_p,
+            zip: load.voltage_dependence,
             k_pf: fd.p_pu_per_pu,
             k_qf: fd.q_pu_per_pu,
             v_threshold: settings.v_threshold,
@@ -160,16 +149,17 @@ impl LoadDevice {
         // Static part as an admittance: P / |V|^2 and Q / |V|^2, which stay finite as the
         // voltage collapses because every part is constant impedance below the threshold.
         let vt = self.v_threshold;
+        let z = &self.zip;
         let (gp, gq) = if ratio >= vt {
             let r2 = ratio * ratio;
             (
-                (self.p_z * r2 + self.p_i * ratio + self.p_p) / r2,
-                (self.q_z * r2 + self.q_i * ratio + self.q_p) / r2,
+                (z.p_z * r2 + z.p_i * ratio + z.p_p) / r2,
+                (z.q_z * r2 + z.q_i * ratio + z.q_p) / r2,
             )
         } else {
             (
-                self.p_z + self.p_i / vt + self.p_p / (vt * vt),
-                self.q_z + self.q_i / vt + self.q_p / (vt * vt),
+                z.p_z + z.p_i / vt + z.p_p / (vt * vt),
+                z.q_z + z.q_i / vt + z.q_p / (vt * vt),
             )
         };
         let v02 = self.v0 * self.v0;
