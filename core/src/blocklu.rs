@@ -228,20 +228,27 @@ impl BlockLu {
         );
         let y = scratch;
         // Forward: unit block-lower.
-        for k in 0..self.n {
+        for (k, span) in self.up_ptr.windows(2).enumerate() {
             let yk = y[k];
-            for a in self.up_ptr[k]..self.up_ptr[k + 1] {
-                let j = self.up_idx[a];
-                let d = apply(&self.lower[a], yk);
+            let (lower, idx) = (
+                &self.lower[span[0]..span[1]],
+                &self.up_idx[span[0]..span[1]],
+            );
+            for (block, &j) in lower.iter().zip(idx) {
+                let d = apply(block, yk);
                 y[j][0] -= d[0];
                 y[j][1] -= d[1];
             }
         }
         // Backward: block-upper with the inverted pivots.
-        for k in (0..self.n).rev() {
+        for (k, span) in self.up_ptr.windows(2).enumerate().rev() {
             let mut acc = y[k];
-            for a in self.up_ptr[k]..self.up_ptr[k + 1] {
-                let d = apply(&self.upper[a], y[self.up_idx[a]]);
+            let (upper, idx) = (
+                &self.upper[span[0]..span[1]],
+                &self.up_idx[span[0]..span[1]],
+            );
+            for (block, &j) in upper.iter().zip(idx) {
+                let d = apply(block, y[j]);
                 acc[0] -= d[0];
                 acc[1] -= d[1];
             }

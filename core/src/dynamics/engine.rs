@@ -56,8 +56,12 @@ pub struct SimulationOptions {
     pub duration_s: f64,
     /// Machine models to use.
     pub machine_model: MachineModelChoice,
-    /// Newton tolerance on the largest residual (pu current, or state units), default 1e-6
-    /// (common practice, DOMAIN.md 6.2).
+    /// Newton tolerance on the largest residual (pu current on the system base, or state
+    /// units), default 1e-5. Common practice is about 1e-6 (DOMAIN.md 6.2); on the demo
+    /// grid's three contingencies 1e-6 moved no margin by more than 4e-6 of its value and took
+    /// 10-30 % more iterations, and every reference check in the suite gives the same figures
+    /// at both. The step's own error is far larger: 0.2 degrees over a swing at the default
+    /// step in the step-halving check.
     pub tolerance: f64,
     /// Most Newton iterations in one step before the step is declared failed.
     pub max_iterations: usize,
@@ -87,7 +91,7 @@ impl Default for SimulationOptions {
             step_s: None,
             duration_s: 10.0,
             machine_model: MachineModelChoice::Detailed,
-            tolerance: 1e-6,
+            tolerance: 1e-5,
             max_iterations: 20,
             refresh_after_iterations: 3,
             refresh_every_steps: 32,
@@ -226,11 +230,13 @@ pub struct Simulation<'g> {
     x_new: Vec<f64>,
     v_new: Vec<Complex>,
     f_new: Vec<f64>,
-    /// Voltages at the previous accepted point and the step that led from it (0: none, after
-    /// an event), for the predictor.
+    /// Voltages and derivatives at the previous accepted point and the step that led from it
+    /// (0: none, after an event), for the predictor; `v_prev2` and `h_prev2` one step earlier.
     v_prev: Vec<Complex>,
     f_prev: Vec<f64>,
     h_prev: f64,
+    v_prev2: Vec<Complex>,
+    h_prev2: f64,
     residual: Vec<f64>,
     a_inv_r: Vec<f64>,
     rhs: Vec<f64>,
@@ -239,6 +245,9 @@ pub struct Simulation<'g> {
     scratch: Vec<[f64; 2]>,
     fd_f: Vec<f64>,
     fd_fx: Vec<f64>,
+    fd_a: Vec<f64>,
+    fd_b: Vec<f64>,
+    fd_inv: Vec<f64>,
     vmag: Vec<f64>,
     events: Vec<TimedEvent>,
     next_event: usize,
@@ -413,6 +422,8 @@ impl<'g> Simulation<'g> {
             f: vec![0.0; nx],
             x_new: x,
             v_prev: v.clone(),
+            v_prev2: v.clone(),
+            h_prev2: 0.0,
             f_prev: vec![0.0; nx],
             h_prev: 0.0,
             v_new: v,
@@ -425,6 +436,9 @@ impl<'g> Simulation<'g> {
             scratch: Vec::with_capacity(nb),
             fd_f: vec![0.0; max_n],
             fd_fx: vec![0.0; max_n],
+            fd_a: vec![0.0; max_n * max_n],
+            fd_b: vec![0.0; max_n * 2],
+            fd_inv: vec![0.0; max_n * max_n],
             vmag: vec![0.0; nb],
             events,
             next_event: 0,
@@ -622,7 +636,7 @@ impl<'g> Simulation<'g> {
             let i0 = s.device.evaluate(x, v, f0);
             let fx = &mut self.fd_fx[..n];
             // Columns for the states: A = I - a f_x, C = I_x.
-            let mut a_mat = vec![0.0; n * n];
+            let a_mat = &mut self.fd_a[..n * n];
             for j in 0..n {
                 let eps = 1e-7 * x[j].abs().max(1.0);
                 let keep = x[j];
@@ -637,7 +651,7 @@ impl<'g> Simulation<'g> {
                 jac.c[n + j] = (i1.im - i0.im) / eps;
             }
             // Columns for the voltage: B = -a f_V, D = I_V.
-            let mut b_mat = vec![0.0; n * 2];
+            let b_mat = &mut self.fd_b[..n * 2];
             let mut d = [0.0; 4];
             let eps = 1e-7 * v.norm().max(1.0);
             for (col, dv) in [(0, Complex::new(eps, 0.0)), (1, Complex::new(0.0, eps))] {
@@ -652,14 +666,20 @@ impl<'g> Simulation<'g> {
                 jac.schur = d;
                 continue;
             }
-            if !invert(&mut a_mat, &mut jac.a_inv, n) {
+            let inverse = &mut self.fd_inv[..n * n];
+            if !invert(a_mat, inverse, n) {
                 return false;
             }
-            transpose_in_place(&mut jac.a_inv, n);
+            // Row-major inverse to columns.
+            for (m, column) in jac.a_inv.chunks_exact_mut(n).enumerate() {
+                for (i, entry) in column.iter_mut().enumerate() {
+                    *entry = inverse[i * n + m];
+                }
+            }
             for i in 0..n {
                 for col in 0..2 {
                     jac.a_inv_b[i * 2 + col] = (0..n)
-                        .map(|m| jac.a_inv[m * n + i] * b_mat[m * 2 + col])
+                        .map(|m| inverse[i * n + m] * b_mat[m * 2 + col])
                         .sum();
                 }
             }
@@ -704,17 +724,21 @@ impl<'g> Simulation<'g> {
             let mut norm = 0.0_f64;
             if mode == Mode::Step {
                 for s in self.slots.iter().filter(|s| s.active) {
-                    for i in s.offset..s.offset + s.n {
-                        let r = self.x_new[i] - self.x[i] - a * (self.f_new[i] + self.f[i]);
-                        self.residual[i] = r;
-                        norm = norm.max(r.abs());
+                    let r = s.offset..s.offset + s.n;
+                    let states = self.x_new[r.clone()].iter().zip(&self.x[r.clone()]);
+                    let slopes = self.f_new[r.clone()].iter().zip(&self.f[r.clone()]);
+                    for (res, ((x1, x0), (f1, f0))) in
+                        self.residual[r].iter_mut().zip(states.zip(slopes))
+                    {
+                        *res = x1 - x0 - a * (f1 + f0);
+                        norm = norm.max(res.abs());
                     }
                 }
             }
-            for k in 0..self.v.len() {
-                let m = self.inj[k] - self.yv[k];
-                self.rhs[2 * k] = -m.re;
-                self.rhs[2 * k + 1] = -m.im;
+            for ((rhs, inj), yv) in self.rhs.chunks_exact_mut(2).zip(&self.inj).zip(&self.yv) {
+                let m = inj - yv;
+                rhs[0] = -m.re;
+                rhs[1] = -m.im;
                 norm = norm.max(m.re.abs()).max(m.im.abs());
             }
             if !norm.is_finite() {
@@ -750,44 +774,46 @@ impl<'g> Simulation<'g> {
             last_norm = norm;
             // Reduced right-hand side: -F + sum C A^-1 R.
             if mode == Mode::Step {
-                for (k, s) in self.slots.iter().enumerate() {
+                for (s, jac) in self.slots.iter().zip(&self.jac) {
                     if !s.active || s.n == 0 {
                         continue;
                     }
-                    let jac = &self.jac[k];
                     let n = s.n;
                     let r = &self.residual[s.offset..s.offset + n];
                     let out = &mut self.a_inv_r[s.offset..s.offset + n];
                     out.fill(0.0);
-                    for m in 0..n {
-                        let column = &jac.a_inv[m * n..(m + 1) * n];
+                    for (column, rm) in jac.a_inv.chunks_exact(n).zip(r) {
                         for (o, a) in out.iter_mut().zip(column) {
-                            *o += a * r[m];
+                            *o += a * rm;
                         }
                     }
-                    let (cr, ci) = (0..n).fold((0.0, 0.0), |(cr, ci), m| {
-                        (cr + jac.c[m] * out[m], ci + jac.c[n + m] * out[m])
-                    });
+                    let (c_re, c_im) = jac.c.split_at(n);
+                    let (cr, ci) = out
+                        .iter()
+                        .zip(c_re.iter().zip(c_im))
+                        .fold((0.0, 0.0), |(cr, ci), (o, (c0, c1))| {
+                            (cr + c0 * o, ci + c1 * o)
+                        });
                     self.rhs[2 * s.bus] += cr;
                     self.rhs[2 * s.bus + 1] += ci;
                 }
             }
             self.lu.solve_in_place(&mut self.rhs, &mut self.scratch);
-            for k in 0..self.v_new.len() {
-                self.v_new[k] += Complex::new(self.rhs[2 * k], self.rhs[2 * k + 1]);
+            for (v, dv) in self.v_new.iter_mut().zip(self.rhs.chunks_exact(2)) {
+                *v += Complex::new(dv[0], dv[1]);
             }
             if mode == Mode::Step {
-                for (k, s) in self.slots.iter().enumerate() {
+                for (s, jac) in self.slots.iter().zip(&self.jac) {
                     if !s.active || s.n == 0 {
                         continue;
                     }
-                    let jac = &self.jac[k];
                     let (dvr, dvi) = (self.rhs[2 * s.bus], self.rhs[2 * s.bus + 1]);
-                    for i in 0..s.n {
-                        let g = s.offset + i;
-                        self.x_new[g] -= self.a_inv_r[g]
-                            + jac.a_inv_b[i * 2] * dvr
-                            + jac.a_inv_b[i * 2 + 1] * dvi;
+                    let r = s.offset..s.offset + s.n;
+                    let corrections = self.a_inv_r[r.clone()]
+                        .iter()
+                        .zip(jac.a_inv_b.chunks_exact(2));
+                    for (x, (air, ab)) in self.x_new[r].iter_mut().zip(corrections) {
+                        *x -= air + ab[0] * dvr + ab[1] * dvi;
                     }
                 }
             }
@@ -830,16 +856,26 @@ impl<'g> Simulation<'g> {
     fn advance(&mut self, step: f64) {
         let mut h = step;
         for attempt in 0..=MAX_STEP_HALVINGS {
-            // Predictor: explicit Euler for the states, linear extrapolation of the voltages
-            // when the previous step was smooth (no event since).
+            // Predictor, when the previous step was smooth (no event since): second-order
+            // Adams-Bashforth for the states, and for the voltages quadratic extrapolation
+            // after two equal steps, linear otherwise. Right after an event: explicit Euler
+            // and the voltages held. (Third-order Adams-Bashforth for the states was tried:
+            // 4 % fewer iterations, but runs with no event no longer stayed flat to 1e-14.)
             if self.h_prev > 0.0 {
                 let r = h / self.h_prev;
                 for i in 0..self.x.len() {
                     let slope = self.f[i] + 0.5 * r * (self.f[i] - self.f_prev[i]);
                     self.x_new[i] = self.x[i] + h * slope;
                 }
-                for k in 0..self.v.len() {
-                    self.v_new[k] = self.v[k] + (self.v[k] - self.v_prev[k]) * r;
+                if self.h_prev2 == self.h_prev && h == self.h_prev {
+                    // Two equal steps behind: quadratic extrapolation of the voltages.
+                    for k in 0..self.v.len() {
+                        self.v_new[k] = self.v[k] * 3.0 - self.v_prev[k] * 3.0 + self.v_prev2[k];
+                    }
+                } else {
+                    for k in 0..self.v.len() {
+                        self.v_new[k] = self.v[k] + (self.v[k] - self.v_prev[k]) * r;
+                    }
                 }
             } else {
                 for i in 0..self.x.len() {
@@ -868,7 +904,9 @@ impl<'g> Simulation<'g> {
         self.stats.steps += 1;
         self.jac_age += 1;
         self.t += h;
+        std::mem::swap(&mut self.v_prev2, &mut self.v_prev);
         self.v_prev.copy_from_slice(&self.v);
+        self.h_prev2 = self.h_prev;
         self.f_prev.copy_from_slice(&self.f);
         self.h_prev = h;
         std::mem::swap(&mut self.x, &mut self.x_new);
@@ -1124,16 +1162,15 @@ impl<'g> Simulation<'g> {
             }
         }
         if who != usize::MAX {
-            let id = self.grid.machines[who].id.clone();
-            self.monitor.check_angle(t, worst, &id);
+            self.monitor
+                .check_angle(t, worst, &self.grid.machines[who].id);
         }
         for c in &acc {
             let f_hz = self.grid.frequency_hz * c.speed;
-            let label = format!(
-                "centre of inertia of the island of bus {}",
-                self.grid.buses[c.island].number
-            );
-            self.monitor.check_frequency(t, f_hz, &label);
+            let bus = self.grid.buses[c.island].number;
+            self.monitor.check_frequency(t, f_hz, || {
+                format!("centre of inertia of the island of bus {bus}")
+            });
         }
         self.refresh_vmag();
         self.monitor.check_voltages(t, &self.vmag);
@@ -1256,14 +1293,6 @@ fn check_events(grid: &Grid, events: &[TimedEvent]) -> Result<(), Error> {
         }
     }
     Ok(())
-}
-
-fn transpose_in_place(a: &mut [f64], n: usize) {
-    for i in 0..n {
-        for j in i + 1..n {
-            a.swap(i * n + j, j * n + i);
-        }
-    }
 }
 
 /// Inverts the `n x n` row-major matrix `a` (destroyed) into `out` by Gauss-Jordan elimination

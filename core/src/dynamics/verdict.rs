@@ -236,14 +236,15 @@ impl Monitor {
     }
 
     /// Frequency check on a centre-of-inertia frequency in Hz.
-    pub(crate) fn check_frequency(&mut self, t_s: f64, f_hz: f64, island: &str) {
+    /// `island` names the island; it is only called when the check fails.
+    pub(crate) fn check_frequency(&mut self, t_s: f64, f_hz: f64, island: impl FnOnce() -> String) {
         let m = &mut self.margins;
         m.nadir_hz = m.nadir_hz.min(f_hz);
         m.zenith_hz = m.zenith_hz.max(f_hz);
         if f_hz < self.criteria.nadir_hz {
-            self.fail(Criterion::FrequencyNadir, t_s, island.to_string(), f_hz);
+            self.fail(Criterion::FrequencyNadir, t_s, island(), f_hz);
         } else if f_hz > self.criteria.zenith_hz {
-            self.fail(Criterion::FrequencyZenith, t_s, island.to_string(), f_hz);
+            self.fail(Criterion::FrequencyZenith, t_s, island(), f_hz);
         }
     }
 
