@@ -1,6 +1,7 @@
 //! The `holdfast` command line: grid checks, power flow and dynamic simulation today; datasets,
 //! training and advice as the later work lands.
 
+mod dataset;
 mod plot;
 mod report;
 mod simulate;
@@ -47,6 +48,10 @@ enum Command {
     ///       --event "0.183 trip \"North Hub - City North 345 #1\"" --out run.csv
     #[command(verbatim_doc_comment)]
     Simulate(simulate::SimulateArgs),
+    /// Build labelled datasets from a study file, merge split builds, print statistics,
+    /// export for other tools.
+    #[command(subcommand)]
+    Dataset(dataset::DatasetCommand),
     /// Run the pipeline on the bundled demo grid (today: check it and solve it at light,
     /// nominal and peak load, then simulate its bundled contingencies with and without a shed).
     ///
@@ -207,6 +212,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Grid(GridCommand::Import { input, output }) => import(&input, &output)?,
         Command::Simulate(args) => simulate::run(&args, &mut out)?,
+        Command::Dataset(cmd) => dataset::run(&cmd, &mut out)?,
         Command::Demo => demo(&mut out)?,
     }
     out.flush()?;

@@ -19,7 +19,8 @@ pub struct Problem {
 }
 
 impl Problem {
-    pub(crate) fn new(
+    /// A problem in `record` (at `line`, when known) with no particular field.
+    pub fn new(
         line: Option<usize>,
         record: impl Into<String>,
         message: impl Into<String>,
@@ -33,7 +34,8 @@ impl Problem {
         }
     }
 
-    pub(crate) fn field(mut self, field: impl Into<String>, value: impl fmt::Display) -> Problem {
+    /// The same problem, pinned to a field and its value.
+    pub fn field(mut self, field: impl Into<String>, value: impl fmt::Display) -> Problem {
         self.field = Some(field.into());
         self.value = Some(value.to_string());
         self

@@ -65,7 +65,9 @@ fn peek_version(text: &str, path: &Path) -> Result<i64, Error> {
     }
 }
 
-pub(crate) fn syntax_error(text: &str, path: &Path, e: &toml::de::Error) -> Error {
+/// A TOML parse error of `text` (read from `path`) as an [`Error::Syntax`] with line and column;
+/// shared by every TOML file of ours (grids, scenarios, studies).
+pub fn syntax_error(text: &str, path: &Path, e: &toml::de::Error) -> Error {
     let (line, column) = match e.span() {
         Some(span) => line_col(text, span.start),
         None => (1, 1),
@@ -79,7 +81,7 @@ pub(crate) fn syntax_error(text: &str, path: &Path, e: &toml::de::Error) -> Erro
 }
 
 /// 1-based line and column of a byte offset.
-pub(crate) fn line_col(text: &str, offset: usize) -> (usize, usize) {
+pub fn line_col(text: &str, offset: usize) -> (usize, usize) {
     let offset = offset.min(text.len());
     let before = text.get(..offset).unwrap_or(text);
     let line = before.bytes().filter(|&b| b == b'\n').count() + 1;

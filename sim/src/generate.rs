@@ -1,0 +1,383 @@
+//! Generating a dataset: sample `i` of a study from its own random stream, shards in parallel,
+//! resumable, splittable across the jobs of a cluster array.
+
+use std::collections::BTreeSet;
+use std::path::{Path, PathBuf};
+
+use holdfast_core::topology::{DistanceMatrix, electrical_distance};
+use holdfast_core::{Grid, Outages, format};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+
+use crate::contingency::{FaultSet, draw_contingency};
+use crate::dataset::{
+    DatasetError, Labelled, Manifest, PointRecord, SHARD_FORMAT_VERSION, Sample, SampleBody,
+    ShardHeader, encode_shard, grid_fingerprint, hex, io_error, read_shard, shard_file_name,
+    write_atomic,
+};
+use crate::label::{Label, Outcome, RunSummary, SimulationOracle, bisect};
+use crate::sampling::draw_operating_point;
+use crate::shed::candidates;
+use crate::study::{Study, read_study};
+
+/// Everything needed to label any sample of a study; built once, shared by all threads.
+pub struct Generator {
+    /// The study.
+    pub study: Study,
+    /// The grid as read.
+    pub grid: Grid,
+    /// Fingerprint of the grid.
+    pub fingerprint: u64,
+    faults: FaultSet,
+    distance: DistanceMatrix,
+}
+
+impl Generator {
+    /// Reads the study and its grid and checks them against each other.
+    pub fn open(study_path: &Path) -> Result<Generator, DatasetError> {
+        let study = read_study(study_path)?;
+        let grid = format::load_grid(&study.grid_path)?;
+        Generator::new(study, grid, study_path)
+    }
+
+    /// From a parsed study and grid (`study_path` names the study in messages).
+    pub fn new(study: Study, grid: Grid, study_path: &Path) -> Result<Generator, DatasetError> {
+        study.check_against(&grid, study_path)?;
+        let fingerprint = grid_fingerprint(&grid)?;
+        let faults = FaultSet::new(&grid, &study);
+        let distance = electrical_distance(&grid, &Outages::none());
+        Ok(Generator {
+            study,
+            grid,
+            fingerprint,
+            faults,
+            distance,
+        })
+    }
+
+    /// The contingency set's fault lists.
+    pub fn faults(&self) -> &FaultSet {
+        &self.faults
+    }
+
+    /// The random stream of sample `index`: ChaCha8 seeded by the study seed, stream `index`.
+    pub fn rng(&self, index: u64) -> ChaCha8Rng {
+        let mut rng = ChaCha8Rng::seed_from_u64(self.study.seed);
+        rng.set_stream(index);
+        rng
+    }
+
+    /// Draws and labels sample `index`. Depends on nothing but the study, the grid and the
+    /// index.
+    pub fn sample(&self, index: u64) -> Sample {
+        let study = &self.study;
+        let mut rng = self.rng(index);
+        let mut rejections = Vec::new();
+        for _ in 0..study.acceptance.max_attempts {
+            let (_, drawn) = draw_operating_point(&self.grid, study, &mut rng);
+            let op = match drawn {
+                Ok(op) => op,
+                Err(r) => {
+                    rejections.push(r);
+                    continue;
+                }
+            };
+            let point = PointRecord::of(&op);
+            let body = match self.label(&op, &mut rng) {
+                Ok(l) => SampleBody::Labelled(Box::new(Labelled { point, ..l })),
+                Err(message) => SampleBody::Failed {
+                    point: Box::new(point),
+                    message,
+                },
+            };
+            return Sample {
+                index,
+                rejections,
+                body,
+            };
+        }
+        Sample {
+            index,
+            rejections,
+            body: SampleBody::Rejected,
+        }
+    }
+
+    fn label(
+        &self,
+        op: &crate::sampling::OperatingPoint,
+        rng: &mut ChaCha8Rng,
+    ) -> Result<Labelled, String> {
+        let study = &self.study;
+        let base = op.grid.s_base_mva;
+        let contingency = draw_contingency(&self.faults, op, study, rng)
+            .ok_or_else(|| "no contingency of a weighted kind applies here".to_string())?;
+        let (lo, hi) = (study.shedding.delay_min_s, study.shedding.delay_max_s);
+        let delay_s = if hi > lo {
+            rng.random_range(lo..hi)
+        } else {
+            lo
+        };
+        let action_at_s = contingency.settled_at_s(&study.contingencies) + delay_s;
+        let cands = candidates(&op.grid, study);
+        let max_pu: f64 = cands.iter().map(|c| c.sheddable_pu).sum();
+        let load_pu: f64 = op
+            .grid
+            .loads
+            .iter()
+            .filter(|l| l.in_service)
+            .map(|l| l.p_pu)
+            .sum();
+        let tol_pu =
+            (study.shedding.tolerance_mw / base).max(study.shedding.tolerance_share * load_pu);
+        let mut oracle = SimulationOracle::new(
+            op,
+            &contingency,
+            study,
+            &study.simulation,
+            &cands,
+            &self.distance,
+            action_at_s,
+        )
+        .map_err(|e| e.to_string())?;
+        let (outcome, total_pu, trials, non_monotone, verdict) = if oracle.failed_before_action() {
+            // The verdict is already certain: no action can undo it.
+            let v = crate::label::ShedOracle::run(&mut oracle, 0.0);
+            let v = v.map_err(|e| e.to_string())?;
+            (Outcome::Unsavable, max_pu, Vec::new(), false, v)
+        } else {
+            bisect(&mut oracle, max_pu, tol_pu, base).map_err(|e| e.to_string())?
+        };
+        let shed_mw = match outcome {
+            Outcome::Shed => oracle.placement_mw(total_pu),
+            _ => Vec::new(),
+        };
+        Ok(Labelled {
+            point: PointRecord::of(op),
+            contingency,
+            delay_s,
+            action_at_s,
+            label: Label {
+                outcome,
+                shed_mw,
+                total_mw: if outcome == Outcome::Shed {
+                    total_pu * base
+                } else {
+                    0.0
+                },
+                sheddable_mw: max_pu * base,
+                tolerance_mw: tol_pu * base,
+                simulations: oracle.runs,
+                non_monotone,
+                trials,
+                verdict: RunSummary::from(&verdict),
+            },
+        })
+    }
+}
+
+/// How to run a build.
+#[derive(Clone, Debug)]
+pub struct BuildOptions {
+    /// Samples in the dataset.
+    pub samples: u64,
+    /// The dataset folder.
+    pub out: PathBuf,
+    /// Worker threads (0: all cores).
+    pub jobs: usize,
+    /// This process's part, `(k, n)` with `1 <= k <= n`: shards `j` with `j % n == k - 1`.
+    pub part: (u32, u32),
+    /// Continue a build: keep complete shards, write the missing ones.
+    pub resume: bool,
+}
+
+/// What a build did.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct BuildReport {
+    /// Shards this part owns.
+    pub owned: usize,
+    /// Of those, found complete and kept.
+    pub kept: usize,
+    /// Of those, written now.
+    pub written: usize,
+}
+
+/// Reports progress; called from worker threads.
+pub trait Progress: Sync {
+    /// A shard's work is known: `samples` to do in total this run.
+    fn start(&self, samples: u64);
+    /// One sample is done.
+    fn sample(&self, sample: &Sample);
+    /// A shard file is on disk.
+    fn shard_written(&self, shard: u32);
+}
+
+/// A progress sink that ignores everything.
+pub struct Quiet;
+
+impl Progress for Quiet {
+    fn start(&self, _: u64) {}
+    fn sample(&self, _: &Sample) {}
+    fn shard_written(&self, _: u32) {}
+}
+
+/// Builds (or resumes) this part of a dataset.
+pub fn build(
+    generator: &Generator,
+    opts: &BuildOptions,
+    progress: &dyn Progress,
+) -> Result<BuildReport, DatasetError> {
+    let dir = &opts.out;
+    let (k, n) = opts.part;
+    if n == 0 || k == 0 || k > n {
+        return Err(DatasetError::Folder {
+            path: dir.clone(),
+            message: format!("part {k}/{n} is not valid: use K/N with 1 <= K <= N"),
+        });
+    }
+    std::fs::create_dir_all(dir).map_err(io_error(dir))?;
+    let study = &generator.study;
+    let shard_size = study.shard_size as u64;
+    let shard_count = opts.samples.div_ceil(shard_size) as u32;
+    let mut manifest = Manifest {
+        format_version: 1,
+        study_name: study.name.clone(),
+        study_hash: hex(study.hash),
+        grid_fingerprint: hex(generator.fingerprint),
+        samples: opts.samples,
+        shard_size,
+        shard_count,
+        complete: Vec::new(),
+    };
+    let found = check_folder(dir, &manifest, opts.resume)?;
+    // The grid, canonical, so the dataset can be read without the original files.
+    let grid_text = format::write_grid(&generator.grid)?;
+    write_atomic(&dir.join("grid.toml"), grid_text.as_bytes())?;
+    manifest.complete = found.iter().copied().collect();
+    manifest.write(dir)?;
+    let owned: Vec<u32> = (0..shard_count).filter(|j| j % n == k - 1).collect();
+    let todo: Vec<u32> = owned
+        .iter()
+        .copied()
+        .filter(|j| !found.contains(j))
+        .collect();
+    let to_do_samples: u64 = todo
+        .iter()
+        .map(|&j| u64::from(manifest.shard_range(j).1))
+        .sum();
+    progress.start(to_do_samples);
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(opts.jobs)
+        .build()
+        .map_err(|e| DatasetError::Folder {
+            path: dir.clone(),
+            message: format!("cannot start worker threads: {e}"),
+        })?;
+    let mut written = 0;
+    for &j in &todo {
+        let (first, count) = manifest.shard_range(j);
+        let samples: Vec<Sample> = pool.install(|| {
+            (first..first + u64::from(count))
+                .into_par_iter()
+                .map(|i| {
+                    let s = generator.sample(i);
+                    progress.sample(&s);
+                    s
+                })
+                .collect()
+        });
+        let header = ShardHeader {
+            format_version: SHARD_FORMAT_VERSION,
+            grid_fingerprint: generator.fingerprint,
+            study_hash: study.hash,
+            shard: j,
+            first_sample: first,
+            count,
+        };
+        write_atomic(
+            &dir.join(shard_file_name(j)),
+            &encode_shard(&header, &samples),
+        )?;
+        written += 1;
+        progress.shard_written(j);
+        // Other parts may write into the same folder: list what is there now.
+        let mut complete: BTreeSet<u32> = complete_shards(dir, &manifest)?;
+        complete.insert(j);
+        manifest.complete = complete.into_iter().collect();
+        manifest.write(dir)?;
+    }
+    Ok(BuildReport {
+        owned: owned.len(),
+        kept: owned.len() - todo.len(),
+        written,
+    })
+}
+
+/// Checks the folder before a build: a manifest there must describe the same study, grid and
+/// size; shard files there need `--resume`. Returns the complete shards found.
+fn check_folder(
+    dir: &Path,
+    manifest: &Manifest,
+    resume: bool,
+) -> Result<BTreeSet<u32>, DatasetError> {
+    if dir.join("manifest.json").exists() {
+        let old = Manifest::read(dir)?;
+        let same = old.study_hash == manifest.study_hash
+            && old.grid_fingerprint == manifest.grid_fingerprint
+            && old.samples == manifest.samples
+            && old.shard_size == manifest.shard_size;
+        if !same {
+            return Err(DatasetError::Folder {
+                path: dir.to_path_buf(),
+                message: format!(
+                    "holds a dataset of another study, grid or size (study {}, grid {}, {} samples \
+                     in shards of {}); use an empty folder",
+                    old.study_hash, old.grid_fingerprint, old.samples, old.shard_size
+                ),
+            });
+        }
+    }
+    let found = complete_shards(dir, manifest)?;
+    let any_shard = std::fs::read_dir(dir)
+        .map_err(io_error(dir))?
+        .filter_map(Result::ok)
+        .any(|e| e.file_name().to_string_lossy().starts_with("shard-"));
+    if any_shard && !resume {
+        return Err(DatasetError::Folder {
+            path: dir.to_path_buf(),
+            message: "already holds shard files: add --resume to continue that build, or use an \
+                      empty folder"
+                .to_string(),
+        });
+    }
+    Ok(found)
+}
+
+/// The shards of `manifest`'s dataset present in `dir` and intact. A damaged shard is an
+/// error that names it (delete it and resume).
+pub fn complete_shards(dir: &Path, manifest: &Manifest) -> Result<BTreeSet<u32>, DatasetError> {
+    let mut out = BTreeSet::new();
+    for j in 0..manifest.shard_count {
+        let path = dir.join(shard_file_name(j));
+        if !path.exists() {
+            continue;
+        }
+        let (h, _) = read_shard(&path)?;
+        let (first, count) = manifest.shard_range(j);
+        if format!("{:016x}", h.study_hash) != manifest.study_hash
+            || format!("{:016x}", h.grid_fingerprint) != manifest.grid_fingerprint
+            || h.shard != j
+            || h.first_sample != first
+            || h.count != count
+        {
+            return Err(DatasetError::Shard {
+                path,
+                problem: "belongs to another study, grid or shard layout".to_string(),
+                fix: "remove it from this folder".to_string(),
+            });
+        }
+        out.insert(j);
+    }
+    Ok(out)
+}
