@@ -71,6 +71,39 @@ impl Generator {
     /// Draws and labels sample `index`. Depends on nothing but the study, the grid and the
     /// index.
     pub fn sample(&self, index: u64) -> Sample {
+        let (rejections, prepared) = self.prepare(index);
+        let body = match prepared {
+            None => SampleBody::Rejected,
+            Some(Err((point, message))) => SampleBody::Failed {
+                point: Box::new(point),
+                message,
+            },
+            Some(Ok(p)) => match self.label(&p) {
+                Ok(l) => SampleBody::Labelled(Box::new(l)),
+                Err(message) => SampleBody::Failed {
+                    point: Box::new(PointRecord::of(&p.op)),
+                    message,
+                },
+            },
+        };
+        Sample {
+            index,
+            rejections,
+            body,
+        }
+    }
+
+    /// The random part of sample `index`: the rejected draws, then (unless every draw was
+    /// rejected) the kept operating point with its contingency and action time, or the
+    /// point and why it cannot be labelled.
+    #[allow(clippy::type_complexity)] // reason: a one-off triple of outcomes, named at its use
+    pub fn prepare(
+        &self,
+        index: u64,
+    ) -> (
+        Vec<crate::sampling::Rejection>,
+        Option<Result<Prepared, (PointRecord, String)>>,
+    ) {
         let study = &self.study;
         let mut rng = self.rng(index);
         let mut rejections = Vec::new();
@@ -83,81 +116,77 @@ impl Generator {
                     continue;
                 }
             };
-            let point = PointRecord::of(&op);
-            let body = match self.label(&op, &mut rng) {
-                Ok(l) => SampleBody::Labelled(Box::new(Labelled { point, ..l })),
-                Err(message) => SampleBody::Failed {
-                    point: Box::new(point),
-                    message,
-                },
+            let Some(contingency) = draw_contingency(&self.faults, &op, study, &mut rng) else {
+                let message = "no contingency of a weighted kind applies here".to_string();
+                return (rejections, Some(Err((PointRecord::of(&op), message))));
             };
-            return Sample {
-                index,
-                rejections,
-                body,
+            let (lo, hi) = (study.shedding.delay_min_s, study.shedding.delay_max_s);
+            let delay_s = if hi > lo {
+                rng.random_range(lo..hi)
+            } else {
+                lo
             };
+            let action_at_s = contingency.settled_at_s(&study.contingencies) + delay_s;
+            let cands = candidates(&op.grid, study);
+            let max_pu: f64 = cands.iter().map(|c| c.sheddable_pu).sum();
+            let load_pu: f64 = op
+                .grid
+                .loads
+                .iter()
+                .filter(|l| l.in_service)
+                .map(|l| l.p_pu)
+                .sum();
+            let tol_pu = (study.shedding.tolerance_mw / op.grid.s_base_mva)
+                .max(study.shedding.tolerance_share * load_pu);
+            let prepared = Prepared {
+                op,
+                contingency,
+                delay_s,
+                action_at_s,
+                cands,
+                max_pu,
+                tol_pu,
+            };
+            return (rejections, Some(Ok(prepared)));
         }
-        Sample {
-            index,
-            rejections,
-            body: SampleBody::Rejected,
-        }
+        (rejections, None)
     }
 
-    fn label(
-        &self,
-        op: &crate::sampling::OperatingPoint,
-        rng: &mut ChaCha8Rng,
-    ) -> Result<Labelled, String> {
-        let study = &self.study;
-        let base = op.grid.s_base_mva;
-        let contingency = draw_contingency(&self.faults, op, study, rng)
-            .ok_or_else(|| "no contingency of a weighted kind applies here".to_string())?;
-        let (lo, hi) = (study.shedding.delay_min_s, study.shedding.delay_max_s);
-        let delay_s = if hi > lo {
-            rng.random_range(lo..hi)
-        } else {
-            lo
-        };
-        let action_at_s = contingency.settled_at_s(&study.contingencies) + delay_s;
-        let cands = candidates(&op.grid, study);
-        let max_pu: f64 = cands.iter().map(|c| c.sheddable_pu).sum();
-        let load_pu: f64 = op
-            .grid
-            .loads
-            .iter()
-            .filter(|l| l.in_service)
-            .map(|l| l.p_pu)
-            .sum();
-        let tol_pu =
-            (study.shedding.tolerance_mw / base).max(study.shedding.tolerance_share * load_pu);
-        let mut oracle = SimulationOracle::new(
-            op,
-            &contingency,
-            study,
-            &study.simulation,
-            &cands,
+    /// The simulation oracle of a prepared sample: its contingency run up to the action time.
+    pub fn oracle<'a>(
+        &'a self,
+        p: &'a Prepared,
+    ) -> Result<SimulationOracle<'a>, holdfast_core::Error> {
+        SimulationOracle::new(
+            &p.op,
+            &p.contingency,
+            &self.study,
+            &self.study.simulation,
+            &p.cands,
             &self.distance,
-            action_at_s,
+            p.action_at_s,
         )
-        .map_err(|e| e.to_string())?;
+    }
+
+    fn label(&self, p: &Prepared) -> Result<Labelled, String> {
+        let base = p.op.grid.s_base_mva;
+        let mut oracle = self.oracle(p).map_err(|e| e.to_string())?;
         let (outcome, total_pu, trials, non_monotone, verdict) = if oracle.failed_before_action() {
             // The verdict is already certain: no action can undo it.
-            let v = crate::label::ShedOracle::run(&mut oracle, 0.0);
-            let v = v.map_err(|e| e.to_string())?;
-            (Outcome::Unsavable, max_pu, Vec::new(), false, v)
+            let v = crate::label::ShedOracle::run(&mut oracle, 0.0).map_err(|e| e.to_string())?;
+            (Outcome::Unsavable, p.max_pu, Vec::new(), false, v)
         } else {
-            bisect(&mut oracle, max_pu, tol_pu, base).map_err(|e| e.to_string())?
+            bisect(&mut oracle, p.max_pu, p.tol_pu, base).map_err(|e| e.to_string())?
         };
         let shed_mw = match outcome {
             Outcome::Shed => oracle.placement_mw(total_pu),
             _ => Vec::new(),
         };
         Ok(Labelled {
-            point: PointRecord::of(op),
-            contingency,
-            delay_s,
-            action_at_s,
+            point: PointRecord::of(&p.op),
+            contingency: p.contingency.clone(),
+            delay_s: p.delay_s,
+            action_at_s: p.action_at_s,
             label: Label {
                 outcome,
                 shed_mw,
@@ -166,8 +195,8 @@ impl Generator {
                 } else {
                     0.0
                 },
-                sheddable_mw: max_pu * base,
-                tolerance_mw: tol_pu * base,
+                sheddable_mw: p.max_pu * base,
+                tolerance_mw: p.tol_pu * base,
                 simulations: oracle.runs,
                 non_monotone,
                 trials,
@@ -175,6 +204,25 @@ impl Generator {
             },
         })
     }
+}
+
+/// A sample ready to label: the kept operating point, its contingency, the action time, the
+/// candidates and the search range.
+pub struct Prepared {
+    /// The operating point.
+    pub op: crate::sampling::OperatingPoint,
+    /// The contingency.
+    pub contingency: crate::contingency::Contingency,
+    /// Delay of the action after clearing, s.
+    pub delay_s: f64,
+    /// Time of the action, s.
+    pub action_at_s: f64,
+    /// Candidate buses.
+    pub cands: Vec<crate::shed::Candidate>,
+    /// All shed-able load, pu.
+    pub max_pu: f64,
+    /// Bisection tolerance, pu.
+    pub tol_pu: f64,
 }
 
 /// How to run a build.

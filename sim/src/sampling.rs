@@ -128,6 +128,20 @@ fn equicorrelated<R: Rng>(rng: &mut R, n: usize, rho: f64) -> Vec<f64> {
         .collect()
 }
 
+/// Hub-height wind speeds of `n` plants, m/s: Weibull marginals joined by a Gaussian copula
+/// with the study's common correlation (normal scores mapped through the normal CDF and the
+/// Weibull quantile).
+pub fn wind_speeds<R: Rng>(rng: &mut R, n: usize, w: &WindSampling) -> Vec<f64> {
+    equicorrelated(rng, n, w.correlation)
+        .into_iter()
+        .map(|z| {
+            // Keep p away from 1 so the quantile stays finite.
+            let p = normal_cdf(z).clamp(1e-12, 1.0 - 1e-12);
+            weibull_quantile(p, w.weibull_shape, w.weibull_scale_m_s)
+        })
+        .collect()
+}
+
 /// Draws one operating point and solves it. The commitment rule: machines with active power
 /// range (not synchronous condensers) are switched on in the study's order, then by falling
 /// rating, until their maximum output covers the net load times `1 + reserve_share`; the
@@ -148,15 +162,7 @@ pub fn draw_operating_point<R: Rng>(
         .into_iter()
         .map(|z| (1.0 + ls.area_sd * z).max(0.05))
         .collect();
-    let ws = &study.wind;
-    let speeds: Vec<f64> = equicorrelated(rng, base.wind_plants.len(), ws.correlation)
-        .into_iter()
-        .map(|z| {
-            // Keep p away from 1 so the quantile stays finite.
-            let p = normal_cdf(z).clamp(1e-12, 1.0 - 1e-12);
-            weibull_quantile(p, ws.weibull_shape, ws.weibull_scale_m_s)
-        })
-        .collect();
+    let speeds = wind_speeds(rng, base.wind_plants.len(), &study.wind);
     let mut draw = Draw {
         load_level: level,
         area_factors,

@@ -1,0 +1,261 @@
+//! End-to-end tests of `holdfast dataset`: a build killed mid-way and resumed gives the same
+//! dataset as an uninterrupted one; damaged shards and misuse are reported with the fix.
+
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test code, where a panic is the failure report
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+use std::time::{Duration, Instant};
+
+fn exe() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_holdfast"));
+    c.current_dir(env!("CARGO_MANIFEST_DIR"));
+    c
+}
+
+fn holdfast(args: &[&str]) -> Output {
+    exe().args(args).output().expect("run holdfast")
+}
+
+fn text(bytes: &[u8]) -> String {
+    String::from_utf8_lossy(bytes).into_owned()
+}
+
+fn temp_dir(test: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("holdfast-ds-{test}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// The demo study with small shards, in `dir`.
+fn study(dir: &Path, shard_size: usize) -> PathBuf {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let text = std::fs::read_to_string(root.join("scenarios/quillmoor-study.toml")).unwrap();
+    let grid = root.join("scenarios/quillmoor.toml");
+    let text = text
+        .replace(
+            "grid = \"quillmoor.toml\"",
+            &format!("grid = {:?}", grid.display().to_string()),
+        )
+        .replace("shard_size = 250", &format!("shard_size = {shard_size}"));
+    let path = dir.join("study.toml");
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+fn shards(dir: &Path) -> Vec<(String, Vec<u8>)> {
+    let mut out: Vec<(String, Vec<u8>)> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap())
+        .filter(|e| !e.file_name().to_string_lossy().starts_with('.'))
+        .map(|e| {
+            (
+                e.file_name().to_string_lossy().into_owned(),
+                std::fs::read(e.path()).unwrap(),
+            )
+        })
+        .collect();
+    out.sort();
+    out
+}
+
+#[test]
+fn a_build_killed_mid_way_resumes_to_the_same_dataset() {
+    let dir = temp_dir("crash");
+    let study = study(&dir, 4);
+    let study = study.to_str().unwrap();
+    let whole = dir.join("whole");
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study,
+        "-n",
+        "40",
+        "-o",
+        whole.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+
+    // The same build, killed (SIGKILL) as soon as its first shards are on disk.
+    let crashed = dir.join("crashed");
+    let mut child = exe()
+        .args(["dataset", "build", study, "-n", "40", "-o"])
+        .arg(&crashed)
+        .args(["--quiet", "--jobs", "1"])
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let started = Instant::now();
+    loop {
+        let written = std::fs::read_dir(&crashed)
+            .map(|d| {
+                d.filter_map(Result::ok)
+                    .filter(|e| e.file_name().to_string_lossy().starts_with("shard-"))
+                    .count()
+            })
+            .unwrap_or(0);
+        if written >= 2 || started.elapsed() > Duration::from_secs(120) {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    child.kill().unwrap();
+    let status = child.wait().unwrap();
+    let left = shards(&crashed)
+        .iter()
+        .filter(|f| f.0.starts_with("shard-"))
+        .count();
+    assert!(
+        !status.success() && (1..10).contains(&left),
+        "the build was not cut mid-way ({left} of 10 shards, {status})"
+    );
+
+    // Without --resume the folder is refused; with it the build completes.
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study,
+        "-n",
+        "40",
+        "-o",
+        crashed.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(!out.status.success());
+    assert!(
+        text(&out.stderr).contains("--resume"),
+        "{}",
+        text(&out.stderr)
+    );
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study,
+        "-n",
+        "40",
+        "-o",
+        crashed.to_str().unwrap(),
+        "--quiet",
+        "--resume",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stdout).contains(&format!("{left} kept from before")),
+        "{}",
+        text(&out.stdout)
+    );
+    assert_eq!(shards(&whole), shards(&crashed));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn damaged_shards_are_named_with_the_fix() {
+    let dir = temp_dir("damaged");
+    let study = study(&dir, 5);
+    let data = dir.join("data");
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study.to_str().unwrap(),
+        "-n",
+        "10",
+        "-o",
+        data.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let stats = holdfast(&["dataset", "stats", data.to_str().unwrap()]);
+    assert!(stats.status.success(), "{}", text(&stats.stderr));
+    assert!(
+        text(&stats.stdout).contains("samples: 10 of 10 asked"),
+        "{}",
+        text(&stats.stdout)
+    );
+
+    // Truncate one shard, flip a byte in the other.
+    let first = data.join("shard-00000.bin");
+    let bytes = std::fs::read(&first).unwrap();
+    std::fs::write(&first, &bytes[..bytes.len() / 2]).unwrap();
+    let out = holdfast(&["dataset", "stats", data.to_str().unwrap()]);
+    let err = text(&out.stderr);
+    assert!(!out.status.success());
+    assert!(
+        err.contains("shard-00000.bin") && err.contains("truncated"),
+        "{err}"
+    );
+    assert!(err.contains("--resume"), "{err}");
+    std::fs::remove_file(&first).unwrap();
+    let second = data.join("shard-00001.bin");
+    let mut bytes = std::fs::read(&second).unwrap();
+    bytes[40] ^= 0x5a;
+    std::fs::write(&second, &bytes).unwrap();
+    let out = holdfast(&["dataset", "stats", data.to_str().unwrap()]);
+    let err = text(&out.stderr);
+    assert!(
+        err.contains("shard-00001.bin") && err.contains("checksum"),
+        "{err}"
+    );
+
+    // Resuming rewrites the removed shard; the corrupted one must be removed first.
+    std::fs::remove_file(&second).unwrap();
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study.to_str().unwrap(),
+        "-n",
+        "10",
+        "-o",
+        data.to_str().unwrap(),
+        "--quiet",
+        "--resume",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let out = holdfast(&["dataset", "export", data.to_str().unwrap(), "-o"]);
+    assert!(!out.status.success());
+    let csv = dir.join("data.csv");
+    let out = holdfast(&[
+        "dataset",
+        "export",
+        data.to_str().unwrap(),
+        "--format",
+        "csv",
+        "-o",
+        csv.to_str().unwrap(),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let table = std::fs::read_to_string(&csv).unwrap();
+    assert_eq!(table.lines().count(), 11);
+    let columns = table.lines().next().unwrap().split(',').count();
+    assert!(table.lines().all(|l| l.matches(',').count() + 1 >= columns));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_study_file_with_mistakes_is_reported_by_line_field_and_value() {
+    let dir = temp_dir("badstudy");
+    let path = dir.join("study.toml");
+    std::fs::write(
+        &path,
+        "format_version = 1\ngrid = \"../no-such-grid.toml\"\n[shedding]\ndelay_min_s = -1.0\n",
+    )
+    .unwrap();
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        path.to_str().unwrap(),
+        "-n",
+        "5",
+        "-o",
+        dir.join("d").to_str().unwrap(),
+    ]);
+    let err = text(&out.stderr);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        err.contains("line 4: [shedding], field `delay_min_s` = -1"),
+        "{err}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
