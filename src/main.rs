@@ -298,9 +298,10 @@ fn demo(out: &mut impl Write) -> Result<()> {
         writeln!(out)?;
     }
     demo_contingencies(out, &grid)?;
+    demo_dataset(out, &grid)?;
     writeln!(
         out,
-        "Next steps in the pipeline (datasets, training, advice) are being built; see the"
+        "Next steps in the pipeline (training, advice) are being built; see the"
     )?;
     writeln!(out, "issues and DEVELOPERS.md.")?;
     writeln!(out)?;
@@ -323,6 +324,47 @@ const DEMO_SCENARIOS: [(&str, &str); 3] = [
         include_str!("../scenarios/quillmoor-breaker-failure.toml"),
     ),
 ];
+
+/// The bundled demo study (fictional, like its grid).
+const DEMO_STUDY: &str = include_str!("../scenarios/quillmoor-study.toml");
+const DEMO_STUDY_NAME: &str = "scenarios/quillmoor-study.toml";
+
+/// Labels a small dataset of the demo study into a temporary folder and prints its statistics.
+fn demo_dataset(out: &mut impl Write, grid: &Grid) -> Result<()> {
+    use holdfast_sim::generate::{BuildOptions, Generator, Quiet, build};
+    let samples = 100;
+    writeln!(
+        out,
+        "=== labelled dataset: {samples} samples of the demo study {DEMO_STUDY_NAME} ==="
+    )?;
+    let study = holdfast_sim::study::parse_study(DEMO_STUDY, Path::new(DEMO_STUDY_NAME))?;
+    let generator = Generator::new(study, grid.clone(), Path::new(DEMO_STUDY_NAME))?;
+    let dir = std::env::temp_dir().join(format!("holdfast-demo-dataset-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    let started = std::time::Instant::now();
+    let opts = BuildOptions {
+        samples,
+        out: dir.clone(),
+        jobs: 0,
+        part: (1, 1),
+        resume: false,
+    };
+    build(&generator, &opts, &Quiet)?;
+    let secs = started.elapsed().as_secs_f64();
+    let stats = holdfast_sim::report::stats(&dir)?;
+    let _ = std::fs::remove_dir_all(&dir);
+    writeln!(out, "labelled in {secs:.1} s on every core")?;
+    for line in stats.to_string().lines().skip(1).take(9) {
+        writeln!(out, "{line}")?;
+    }
+    writeln!(
+        out,
+        "(try: holdfast dataset build {DEMO_STUDY_NAME} -n 2000 -o data/quillmoor, then \
+         holdfast dataset stats data/quillmoor)"
+    )?;
+    writeln!(out)?;
+    Ok(())
+}
 
 fn demo_contingencies(out: &mut impl Write, grid: &Grid) -> Result<()> {
     use holdfast_core::dynamics::{Event, SimulationOptions, TimedEvent, parse_scenario, simulate};

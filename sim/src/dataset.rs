@@ -32,6 +32,7 @@ const MAGIC: &[u8; 8] = b"HFSHARD1";
 
 /// Errors of dataset files. Each names the file and says how to fix it.
 #[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
 pub enum DatasetError {
     /// A grid or study file problem.
     #[error(transparent)]

@@ -168,7 +168,8 @@ impl Generator {
         )
     }
 
-    fn label(&self, p: &Prepared) -> Result<Labelled, String> {
+    /// Labels a prepared sample (the error says why it could not be simulated).
+    pub fn label(&self, p: &Prepared) -> Result<Labelled, String> {
         let base = p.op.grid.s_base_mva;
         let mut oracle = self.oracle(p).map_err(|e| e.to_string())?;
         let (outcome, total_pu, trials, non_monotone, verdict) = if oracle.failed_before_action() {
