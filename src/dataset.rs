@@ -44,9 +44,13 @@ pub(crate) enum DatasetCommand {
         /// The dataset folder.
         dir: PathBuf,
     },
-    /// Write a dataset as a table for other tools.
+    /// Write a dataset for other tools: a CSV table, or a NumPy archive of arrays (the array
+    /// names and codes are listed in holdfast_sim::report::export_npz's documentation).
     ///
-    /// Example: holdfast dataset export data/quillmoor --format csv -o quillmoor.csv
+    /// Examples:
+    ///   holdfast dataset export data/quillmoor --format csv -o quillmoor.csv
+    ///   holdfast dataset export data/quillmoor --format npz -o quillmoor.npz
+    #[command(verbatim_doc_comment)]
     Export {
         /// The dataset folder.
         dir: PathBuf,
@@ -64,6 +68,8 @@ pub(crate) enum DatasetCommand {
 pub(crate) enum ExportFormat {
     /// Comma-separated values, one row per sample.
     Csv,
+    /// NumPy archive (.npz) of per-sample and per-element arrays.
+    Npz,
 }
 
 #[derive(Args, Debug)]
@@ -135,6 +141,7 @@ pub(crate) fn run(cmd: &DatasetCommand, out: &mut impl Write) -> Result<()> {
         } => {
             let rows = match format {
                 ExportFormat::Csv => report::export_csv(dir, file)?,
+                ExportFormat::Npz => report::export_npz(dir, file)?,
             };
             writeln!(out, "{}: {rows} rows", file.display())?;
             Ok(())

@@ -259,3 +259,131 @@ fn a_study_file_with_mistakes_is_reported_by_line_field_and_value() {
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The entries of a stored (uncompressed) zip archive, by walking its local headers.
+fn zip_entries(bytes: &[u8]) -> Vec<(String, Vec<u8>)> {
+    let u16_at = |i: usize| u16::from_le_bytes([bytes[i], bytes[i + 1]]) as usize;
+    let u32_at = |i: usize| u32::from_le_bytes(bytes[i..i + 4].try_into().unwrap()) as usize;
+    let mut out = Vec::new();
+    let mut i = 0;
+    while u32_at(i) == 0x0403_4b50 {
+        assert_eq!(u16_at(i + 8), 0, "stored, not compressed");
+        let size = u32_at(i + 18);
+        let (name_len, extra) = (u16_at(i + 26), u16_at(i + 28));
+        let name = String::from_utf8(bytes[i + 30..i + 30 + name_len].to_vec()).unwrap();
+        let start = i + 30 + name_len + extra;
+        out.push((name, bytes[start..start + size].to_vec()));
+        i = start + size;
+    }
+    out
+}
+
+/// Shape and data of an `.npy` file (NumPy format 1.0).
+fn npy_parts(bytes: &[u8]) -> (String, Vec<usize>, &[u8]) {
+    assert_eq!(&bytes[..8], b"\x93NUMPY\x01\x00");
+    let len = u16::from_le_bytes([bytes[8], bytes[9]]) as usize;
+    assert_eq!((10 + len) % 64, 0, "data aligned to 64 bytes");
+    let header = String::from_utf8(bytes[10..10 + len].to_vec()).unwrap();
+    let shape_text = header
+        .split("'shape': (")
+        .nth(1)
+        .unwrap()
+        .split(')')
+        .next()
+        .unwrap();
+    let shape = shape_text
+        .split(',')
+        .filter(|s| !s.trim().is_empty())
+        .map(|s| s.trim().parse().unwrap())
+        .collect();
+    (header, shape, &bytes[10 + len..])
+}
+
+#[test]
+fn npz_export_holds_the_dataset_as_numpy_reads_it() {
+    let dir = temp_dir("npz");
+    let study = study(&dir, 10);
+    let data = dir.join("data");
+    let out = holdfast(&[
+        "dataset",
+        "build",
+        study.to_str().unwrap(),
+        "-n",
+        "30",
+        "-o",
+        data.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let npz = dir.join("data.npz");
+    let out = holdfast(&[
+        "dataset",
+        "export",
+        data.to_str().unwrap(),
+        "--format",
+        "npz",
+        "-o",
+        npz.to_str().unwrap(),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let stats = text(&holdfast(&["dataset", "stats", data.to_str().unwrap()]).stdout);
+    let need_shed: usize = stats
+        .split("need shed: ")
+        .nth(1)
+        .unwrap()
+        .split_whitespace()
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
+
+    // Read it back by the format specifications (zip APPNOTE, NumPy NEP 1).
+    let entries = zip_entries(&std::fs::read(&npz).unwrap());
+    let get = |name: &str| {
+        entries
+            .iter()
+            .find(|e| e.0 == name)
+            .unwrap_or_else(|| panic!("{name} missing"))
+            .1
+            .clone()
+    };
+    let outcome_file = get("outcome.npy");
+    let (header, shape, outcome) = npy_parts(&outcome_file);
+    assert!(header.contains("'descr': '|i1'"), "{header}");
+    assert_eq!(shape, vec![30]);
+    assert_eq!(outcome.iter().filter(|&&o| o == 1).count(), need_shed);
+    let shed_file = get("shed_mw.npy");
+    let (_, shape, shed) = npy_parts(&shed_file);
+    assert_eq!(shape, vec![30, 32]);
+    let total_file = get("total_shed_mw.npy");
+    let (_, _, total) = npy_parts(&total_file);
+    let f = |b: &[u8], k: usize| f64::from_le_bytes(b[8 * k..8 * k + 8].try_into().unwrap());
+    for s in 0..30 {
+        let row: f64 = (0..32).map(|b| f(shed, s * 32 + b)).sum();
+        if outcome[s] <= 2 && (outcome[s] as i8) >= 0 {
+            assert!(
+                (row - f(total, s)).abs() < 1e-6,
+                "sample {s}: {row} vs {}",
+                f(total, s)
+            );
+        }
+    }
+
+    // And with NumPy itself where it is installed (CI installs it).
+    let script = format!(
+        "import numpy as np\nd = np.load({:?})\nassert d['shed_mw'].shape == (30, 32)\n\
+         assert int((d['outcome'] == 1).sum()) == {need_shed}\nprint('numpy read', len(d.files), 'arrays')\n",
+        npz.display().to_string()
+    );
+    match Command::new("python3").args(["-c", &script]).output() {
+        Ok(o) if o.status.success() => eprintln!("{}", text(&o.stdout).trim()),
+        Ok(o) if text(&o.stderr).contains("No module named 'numpy'") => {
+            eprintln!("numpy is not installed here: checked by the format specifications only");
+        }
+        Ok(o) => panic!("numpy could not read the export: {}", text(&o.stderr)),
+        Err(_) => {
+            eprintln!("python3 is not installed here: checked by the format specifications only")
+        }
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -22,6 +22,7 @@ pub mod contingency;
 pub mod dataset;
 pub mod generate;
 pub mod label;
+pub mod npz;
 pub mod report;
 pub mod sampling;
 pub mod shed;

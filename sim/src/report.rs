@@ -402,3 +402,216 @@ pub fn export_csv(dir: &Path, out: &Path) -> Result<u64, DatasetError> {
     f.write_all(text.as_bytes()).map_err(io_error(out))?;
     Ok(rows)
 }
+
+/// Outcome codes of the NPZ export's `outcome` array.
+pub const NPZ_OUTCOMES: [(&str, i8); 5] = [
+    ("no shed needed", 0),
+    ("shed", 1),
+    ("unsavable", 2),
+    ("rejected (every draw)", -1),
+    ("failed to simulate", -2),
+];
+
+/// Writes a NumPy `.npz` archive: one row per sample (index order) in every array.
+///
+/// Per sample: `index`, `outcome` (codes in [`NPZ_OUTCOMES`]), `contingency_kind` (0 branch
+/// fault, 1 double fault, 2 machine trip, 3 wind-plant trip, -1 none), `disturbance_bus`
+/// (bus number, -1 none), `load_level`, `total_load_mw`, `total_wind_mw`, `inertia_mws`,
+/// `delay_s`, `total_shed_mw`, `sheddable_mw`, `tolerance_mw`, `simulations`, `non_monotone`.
+/// Per sample and element (NaN where the sample has no operating point): `shed_mw` (by bus),
+/// `bus_v_pu`, `bus_angle_deg` (by bus), `load_p_mw`, `load_q_mvar` (by load),
+/// `machine_p_mw`, `machine_on` (by machine), `wind_p_mw` (by wind plant). Element orders:
+/// `bus_numbers`, and the grid file's order of loads, machines and wind plants (`grid.toml` in
+/// the dataset folder). Held in memory while written.
+pub fn export_npz(dir: &Path, out: &Path) -> Result<u64, DatasetError> {
+    use crate::npz::{Dtype, ZipWriter, f64_bytes, i64_bytes, npy};
+    let grid = holdfast_core::format::load_grid(&dir.join("grid.toml"))?;
+    let (nb, nl, nm, nw) = (
+        grid.n_buses(),
+        grid.loads.len(),
+        grid.machines.len(),
+        grid.wind_plants.len(),
+    );
+    let bus_numbers: Vec<i64> = grid.buses.iter().map(|b| i64::from(b.number)).collect();
+    let mut index = Vec::new();
+    let mut outcome: Vec<i8> = Vec::new();
+    let mut kind: Vec<i8> = Vec::new();
+    let mut disturbance = Vec::new();
+    let mut scalars: [Vec<f64>; 9] = Default::default();
+    let mut simulations = Vec::new();
+    let mut non_monotone: Vec<u8> = Vec::new();
+    let (mut shed, mut v, mut angle) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut load_p, mut load_q, mut mach_p, mut mach_on, mut wind_p) =
+        (Vec::new(), Vec::new(), Vec::new(), Vec::new(), Vec::new());
+    let nan = f64::NAN;
+    for_each_sample(dir, |s| {
+        index.push(s.index as i64);
+        let (point, labelled) = match &s.body {
+            SampleBody::Labelled(l) => (Some(&l.point), Some(l)),
+            SampleBody::Failed { point, .. } => (Some(point.as_ref()), None),
+            SampleBody::Rejected => (None, None),
+        };
+        outcome.push(match (&s.body, labelled) {
+            (_, Some(l)) => match l.label.outcome {
+                Outcome::NoShedNeeded => 0,
+                Outcome::Shed => 1,
+                Outcome::Unsavable => 2,
+            },
+            (SampleBody::Rejected, _) => -1,
+            _ => -2,
+        });
+        kind.push(labelled.map_or(-1, |l| {
+            ContingencyKind::ALL
+                .iter()
+                .position(|k| *k == l.contingency.kind)
+                .map_or(-1, |k| k as i8)
+        }));
+        disturbance.push(labelled.map_or(-1, |l| {
+            bus_numbers
+                .get(l.contingency.disturbance_bus as usize)
+                .copied()
+                .unwrap_or(-1)
+        }));
+        let values = [
+            point.map_or(nan, |p| p.draw.load_level),
+            point.map_or(nan, |p| p.total_load_mw),
+            point.map_or(nan, |p| p.total_wind_mw),
+            point.map_or(nan, |p| p.inertia_mws),
+            labelled.map_or(nan, |l| l.delay_s),
+            labelled.map_or(nan, |l| l.label.total_mw),
+            labelled.map_or(nan, |l| l.label.sheddable_mw),
+            labelled.map_or(nan, |l| l.label.tolerance_mw),
+            labelled.map_or(nan, |l| l.label.verdict.max_angle_deg),
+        ];
+        for (column, value) in scalars.iter_mut().zip(values) {
+            column.push(value);
+        }
+        simulations.push(labelled.map_or(0, |l| i64::from(l.label.simulations)));
+        non_monotone.push(u8::from(labelled.is_some_and(|l| l.label.non_monotone)));
+        let mut row = vec![if labelled.is_some() { 0.0 } else { nan }; nb];
+        if let Some(l) = labelled {
+            for (number, mw) in &l.label.shed_mw {
+                if let Some(k) = bus_numbers.iter().position(|b| *b == i64::from(*number)) {
+                    row[k] = *mw;
+                }
+            }
+        }
+        shed.extend(row);
+        let fill = |dst: &mut Vec<f64>, src: Option<&Vec<f64>>, n: usize| match src {
+            Some(x) if x.len() == n => dst.extend_from_slice(x),
+            _ => dst.extend(std::iter::repeat_n(nan, n)),
+        };
+        fill(&mut v, point.map(|p| &p.bus_v_pu), nb);
+        fill(&mut angle, point.map(|p| &p.bus_angle_deg), nb);
+        fill(&mut load_p, point.map(|p| &p.load_p_mw), nl);
+        fill(&mut load_q, point.map(|p| &p.load_q_mvar), nl);
+        fill(&mut mach_p, point.map(|p| &p.machine_p_mw), nm);
+        fill(&mut wind_p, point.map(|p| &p.wind_p_mw), nw);
+        match point {
+            Some(p) if p.machine_on.len() == nm => {
+                mach_on.extend(p.machine_on.iter().map(|&on| u8::from(on)));
+            }
+            _ => mach_on.extend(std::iter::repeat_n(0u8, nm)),
+        }
+    })?;
+    let n = index.len();
+    let mut zip = ZipWriter::default();
+    let mut entries: Vec<(String, Vec<u8>)> = vec![
+        (
+            "index.npy".into(),
+            npy(Dtype::I64, &[n], &i64_bytes(&index)),
+        ),
+        (
+            "outcome.npy".into(),
+            npy(
+                Dtype::I8,
+                &[n],
+                &outcome.iter().map(|&x| x as u8).collect::<Vec<_>>(),
+            ),
+        ),
+        (
+            "contingency_kind.npy".into(),
+            npy(
+                Dtype::I8,
+                &[n],
+                &kind.iter().map(|&x| x as u8).collect::<Vec<_>>(),
+            ),
+        ),
+        (
+            "disturbance_bus.npy".into(),
+            npy(Dtype::I64, &[n], &i64_bytes(&disturbance)),
+        ),
+        (
+            "simulations.npy".into(),
+            npy(Dtype::I64, &[n], &i64_bytes(&simulations)),
+        ),
+        (
+            "non_monotone.npy".into(),
+            npy(Dtype::Bool, &[n], &non_monotone),
+        ),
+        (
+            "bus_numbers.npy".into(),
+            npy(Dtype::I64, &[nb], &i64_bytes(&bus_numbers)),
+        ),
+        (
+            "shed_mw.npy".into(),
+            npy(Dtype::F64, &[n, nb], &f64_bytes(&shed)),
+        ),
+        (
+            "bus_v_pu.npy".into(),
+            npy(Dtype::F64, &[n, nb], &f64_bytes(&v)),
+        ),
+        (
+            "bus_angle_deg.npy".into(),
+            npy(Dtype::F64, &[n, nb], &f64_bytes(&angle)),
+        ),
+        (
+            "load_p_mw.npy".into(),
+            npy(Dtype::F64, &[n, nl], &f64_bytes(&load_p)),
+        ),
+        (
+            "load_q_mvar.npy".into(),
+            npy(Dtype::F64, &[n, nl], &f64_bytes(&load_q)),
+        ),
+        (
+            "machine_p_mw.npy".into(),
+            npy(Dtype::F64, &[n, nm], &f64_bytes(&mach_p)),
+        ),
+        (
+            "machine_on.npy".into(),
+            npy(Dtype::Bool, &[n, nm], &mach_on),
+        ),
+        (
+            "wind_p_mw.npy".into(),
+            npy(Dtype::F64, &[n, nw], &f64_bytes(&wind_p)),
+        ),
+    ];
+    let names = [
+        "load_level",
+        "total_load_mw",
+        "total_wind_mw",
+        "inertia_mws",
+        "delay_s",
+        "total_shed_mw",
+        "sheddable_mw",
+        "tolerance_mw",
+        "max_angle_deg",
+    ];
+    for (name, column) in names.iter().zip(&scalars) {
+        entries.push((
+            format!("{name}.npy"),
+            npy(Dtype::F64, &[n], &f64_bytes(column)),
+        ));
+    }
+    let too_large = || DatasetError::Folder {
+        path: out.to_path_buf(),
+        message: "the export passes the zip format's 4 GiB limit: export CSV, or fewer samples"
+            .to_string(),
+    };
+    for (name, data) in &entries {
+        zip.add(name, data).map_err(|_| too_large())?;
+    }
+    let bytes = zip.finish().map_err(|_| too_large())?;
+    write_atomic(out, &bytes)?;
+    Ok(n as u64)
+}
