@@ -160,3 +160,74 @@ mod contingencies {
         }
     }
 }
+
+fn large() -> Grid {
+    format::load_grid(&Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/vellmark.toml"))
+        .unwrap()
+}
+
+#[test]
+fn large_demo_grid_is_a_real_test_of_scale_and_a_sound_base_case() {
+    // Issue 4: 150-300 buses, several areas, enough machines and wind plants. The same planning
+    // checks as the small grid (common practice), at light, nominal and its stated peak (x1.1):
+    // every voltage inside its band, no branch above its rating at light and nominal load.
+    let base = large();
+    let mut areas: Vec<u32> = base.buses.iter().map(|b| b.area).collect();
+    areas.sort_unstable();
+    areas.dedup();
+    assert!(
+        (150..=300).contains(&base.n_buses()),
+        "{} buses",
+        base.n_buses()
+    );
+    assert!(areas.len() >= 5, "{} areas", areas.len());
+    assert!(base.machines.len() >= 20 && base.wind_plants.len() >= 6);
+    for scale in [0.6, 1.0, 1.1] {
+        let grid = base.with_load_scaled(scale);
+        let sol = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
+            .converged()
+            .unwrap();
+        for (i, bus) in grid.buses.iter().enumerate() {
+            assert!(
+                (bus.v_min_pu..=bus.v_max_pu).contains(&sol.v_pu[i]),
+                "x{scale}: bus {} at {} pu",
+                bus.number,
+                sol.v_pu[i]
+            );
+        }
+        if scale <= 1.0 {
+            for (k, br) in grid.branches.iter().enumerate() {
+                let s_mva = sol.branch_flows[k].s_max_pu() * grid.s_base_mva;
+                assert!(
+                    s_mva <= br.rating_mva,
+                    "x{scale}: {} at {s_mva:.0} MVA",
+                    br.id
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn large_demo_grid_rests_without_events() {
+    // Every model starts at rest from the power flow (DOMAIN.md 6.8): 10 s with no event must
+    // stay flat within 1e-6 and be judged stable.
+    use holdfast_core::dynamics::{Scenario, Simulation, SimulationOptions};
+    let grid = large();
+    let pf = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
+        .converged()
+        .unwrap();
+    let opts = SimulationOptions::default();
+    let mut sim =
+        Simulation::new(&grid, &Outages::none(), &pf, &Scenario::default(), &opts).unwrap();
+    let x0 = sim.states().to_vec();
+    sim.run_to(10.0);
+    let drift = sim
+        .states()
+        .iter()
+        .zip(&x0)
+        .map(|(a, b)| (a - b).abs())
+        .fold(0.0, f64::max);
+    assert!(drift < 1e-6, "largest state change {drift:e}");
+    assert!(sim.finish().verdict.is_stable());
+}
