@@ -250,6 +250,13 @@ fn build_command(args: &BuildArgs, out: &mut impl Write) -> Result<()> {
             0.0
         }
     )?;
+    if !report.rewritten_damaged.is_empty() {
+        writeln!(
+            out,
+            "damaged shards found and written again: {:?}",
+            report.rewritten_damaged
+        )?;
+    }
     writeln!(
         out,
         "(see `holdfast dataset stats {}`)",

@@ -177,7 +177,10 @@ fn damaged_shards_are_named_with_the_fix() {
 
     // Truncate one shard, flip a byte in the other.
     let first = data.join("shard-00000.bin");
-    let bytes = std::fs::read(&first).unwrap();
+    let second = data.join("shard-00001.bin");
+    let bytes_first = std::fs::read(&first).unwrap();
+    let bytes_second = std::fs::read(&second).unwrap();
+    let bytes = bytes_first.clone();
     std::fs::write(&first, &bytes[..bytes.len() / 2]).unwrap();
     let out = holdfast(&["dataset", "stats", data.to_str().unwrap()]);
     let err = text(&out.stderr);
@@ -188,8 +191,7 @@ fn damaged_shards_are_named_with_the_fix() {
     );
     assert!(err.contains("--resume"), "{err}");
     std::fs::remove_file(&first).unwrap();
-    let second = data.join("shard-00001.bin");
-    let mut bytes = std::fs::read(&second).unwrap();
+    let mut bytes = bytes_second.clone();
     bytes[40] ^= 0x5a;
     std::fs::write(&second, &bytes).unwrap();
     let out = holdfast(&["dataset", "stats", data.to_str().unwrap()]);
@@ -199,8 +201,7 @@ fn damaged_shards_are_named_with_the_fix() {
         "{err}"
     );
 
-    // Resuming rewrites the removed shard; the corrupted one must be removed first.
-    std::fs::remove_file(&second).unwrap();
+    // Resuming writes the removed shard and the corrupted one again, as they were.
     let out = holdfast(&[
         "dataset",
         "build",
@@ -213,6 +214,13 @@ fn damaged_shards_are_named_with_the_fix() {
         "--resume",
     ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stdout).contains("damaged shards found and written again: [1]"),
+        "{}",
+        text(&out.stdout)
+    );
+    assert_eq!(std::fs::read(&first).unwrap(), bytes_first);
+    assert_eq!(std::fs::read(&second).unwrap(), bytes_second);
     let out = holdfast(&["dataset", "export", data.to_str().unwrap(), "-o"]);
     assert!(!out.status.success());
     let csv = dir.join("data.csv");

@@ -259,7 +259,8 @@ pub fn decode_shard(bytes: &[u8], path: &Path) -> Result<(ShardHeader, Vec<Sampl
     let damaged = |problem: String| DatasetError::Shard {
         path: path.to_path_buf(),
         problem,
-        fix: "delete it and re-run `holdfast dataset build` with --resume to write it again"
+        fix: "re-run the same `holdfast dataset build` command with --resume: it writes damaged \
+              shards again"
             .to_string(),
     };
     if bytes.len() < 24 || &bytes[..8] != MAGIC {

@@ -250,6 +250,8 @@ pub struct BuildReport {
     pub kept: usize,
     /// Of those, written now.
     pub written: usize,
+    /// Shards found damaged and written again.
+    pub rewritten_damaged: Vec<u32>,
 }
 
 /// Reports progress; called from worker threads.
@@ -299,7 +301,7 @@ pub fn build(
         shard_count,
         complete: Vec::new(),
     };
-    let found = check_folder(dir, &manifest, opts.resume)?;
+    let (found, damaged) = check_folder(dir, &manifest, opts.resume)?;
     // The grid, canonical, so the dataset can be read without the original files.
     let grid_text = format::write_grid(&generator.grid)?;
     write_atomic(&dir.join("grid.toml"), grid_text.as_bytes())?;
@@ -351,7 +353,7 @@ pub fn build(
         written += 1;
         progress.shard_written(j);
         // Other parts may write into the same folder: list what is there now.
-        let mut complete: BTreeSet<u32> = complete_shards(dir, &manifest)?;
+        let mut complete: BTreeSet<u32> = scan_shards(dir, &manifest)?.0;
         complete.insert(j);
         manifest.complete = complete.into_iter().collect();
         manifest.write(dir)?;
@@ -360,16 +362,18 @@ pub fn build(
         owned: owned.len(),
         kept: owned.len() - todo.len(),
         written,
+        rewritten_damaged: damaged.into_iter().filter(|j| owned.contains(j)).collect(),
     })
 }
 
 /// Checks the folder before a build: a manifest there must describe the same study, grid and
-/// size; shard files there need `--resume`. Returns the complete shards found.
+/// size; shard files there need `--resume`. Returns the complete shards found and the damaged
+/// ones (which the build writes again: their content depends only on the study).
 fn check_folder(
     dir: &Path,
     manifest: &Manifest,
     resume: bool,
-) -> Result<BTreeSet<u32>, DatasetError> {
+) -> Result<(BTreeSet<u32>, Vec<u32>), DatasetError> {
     if dir.join("manifest.json").exists() {
         let old = Manifest::read(dir)?;
         let same = old.study_hash == manifest.study_hash
@@ -387,7 +391,7 @@ fn check_folder(
             });
         }
     }
-    let found = complete_shards(dir, manifest)?;
+    let (found, damaged) = scan_shards(dir, manifest)?;
     let any_shard = std::fs::read_dir(dir)
         .map_err(io_error(dir))?
         .filter_map(Result::ok)
@@ -400,19 +404,41 @@ fn check_folder(
                 .to_string(),
         });
     }
-    Ok(found)
+    Ok((found, damaged.into_iter().map(|(j, _)| j).collect()))
 }
 
 /// The shards of `manifest`'s dataset present in `dir` and intact. A damaged shard is an
-/// error that names it (delete it and resume).
+/// error that names it and says how to rewrite it (`--resume`).
 pub fn complete_shards(dir: &Path, manifest: &Manifest) -> Result<BTreeSet<u32>, DatasetError> {
+    let (complete, mut damaged) = scan_shards(dir, manifest)?;
+    match damaged.pop() {
+        Some((_, e)) => Err(e),
+        None => Ok(complete),
+    }
+}
+
+/// The intact shards in `dir`, and the damaged ones (unreadable, truncated, failing their
+/// checksum) with why. A readable shard of another study or layout is an error.
+#[allow(clippy::type_complexity)] // reason: a pair of plain collections, named at the use
+pub fn scan_shards(
+    dir: &Path,
+    manifest: &Manifest,
+) -> Result<(BTreeSet<u32>, Vec<(u32, DatasetError)>), DatasetError> {
     let mut out = BTreeSet::new();
+    let mut damaged = Vec::new();
     for j in 0..manifest.shard_count {
         let path = dir.join(shard_file_name(j));
         if !path.exists() {
             continue;
         }
-        let (h, _) = read_shard(&path)?;
+        let h = match read_shard(&path) {
+            Ok((h, _)) => h,
+            Err(e @ DatasetError::Shard { .. }) => {
+                damaged.push((j, e));
+                continue;
+            }
+            Err(e) => return Err(e),
+        };
         let (first, count) = manifest.shard_range(j);
         if format!("{:016x}", h.study_hash) != manifest.study_hash
             || format!("{:016x}", h.grid_fingerprint) != manifest.grid_fingerprint
@@ -428,5 +454,5 @@ pub fn complete_shards(dir: &Path, manifest: &Manifest) -> Result<BTreeSet<u32>,
         }
         out.insert(j);
     }
-    Ok(out)
+    Ok((out, damaged))
 }
