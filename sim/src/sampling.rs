@@ -194,9 +194,7 @@ fn build(
         let factor = draw.load_level * draw.area_factors.get(k).copied().unwrap_or(1.0);
         load.p_pu *= factor;
         load.q_pu *= factor;
-        if let Some(f) = study.shedding.sheddable_fraction {
-            load.sheddable_fraction = f;
-        }
+        load.sheddable_fraction = study.sheddable_fraction(load);
     }
     let mut wind_pu = 0.0;
     for (plant, &u) in grid.wind_plants.iter_mut().zip(&draw.wind_speed_m_s) {

@@ -26,10 +26,7 @@ pub fn candidates(grid: &Grid, study: &Study) -> Vec<Candidate> {
                 .buses
                 .contains(&grid.buses[l.bus.get()].number);
         if allowed {
-            let fraction = study
-                .shedding
-                .sheddable_fraction
-                .unwrap_or(l.sheddable_fraction);
+            let fraction = study.sheddable_fraction(l);
             per_bus[l.bus.get()] += l.p_pu * fraction;
         }
     }

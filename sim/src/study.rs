@@ -158,6 +158,8 @@ pub struct ShedSettings {
     pub buses: Vec<u32>,
     /// Shed-able share of every load, overriding the grid file's; `None` keeps the grid's.
     pub sheddable_fraction: Option<f64>,
+    /// Shed-able share of named loads (load id, share), overriding both of the above.
+    pub sheddable_by_load: Vec<(String, f64)>,
     /// The action comes this long after fault clearing (after the trip, for a trip), drawn
     /// uniformly per sample between min and max, s.
     pub delay_min_s: f64,
@@ -284,6 +286,9 @@ pub fn parse_study(text: &str, path: &Path) -> Result<Study, Error> {
     if let Some(f) = &s.sheddable_fraction {
         c.range(rec, "sheddable_fraction", f, 0.0, 1.0);
     }
+    for (id, f) in &s.sheddable_by_load {
+        c.range(rec, &format!("sheddable_by_load.\"{id}\""), f, 0.0, 1.0);
+    }
     c.range(rec, "delay_min_s", &s.delay_min_s, 0.0, 5.0);
     c.range(rec, "delay_max_s", &s.delay_max_s, 0.0, 5.0);
     if s.delay_min_s.get_ref() > s.delay_max_s.get_ref() {
@@ -388,6 +393,11 @@ pub fn parse_study(text: &str, path: &Path) -> Result<Study, Error> {
         shedding: ShedSettings {
             buses: s.buses.clone(),
             sheddable_fraction: s.sheddable_fraction.as_ref().map(|f| *f.get_ref()),
+            sheddable_by_load: s
+                .sheddable_by_load
+                .iter()
+                .map(|(id, f)| (id.clone(), *f.get_ref()))
+                .collect(),
             delay_min_s: *s.delay_min_s.get_ref(),
             delay_max_s: *s.delay_max_s.get_ref(),
             placement,
@@ -409,6 +419,18 @@ pub fn parse_study(text: &str, path: &Path) -> Result<Study, Error> {
 }
 
 impl Study {
+    /// The shed-able share of a load: the study's entry for it, else the study's share for
+    /// every load, else the grid file's.
+    pub fn sheddable_fraction(&self, load: &holdfast_core::Load) -> f64 {
+        self.shedding
+            .sheddable_by_load
+            .iter()
+            .find(|(id, _)| *id == load.id)
+            .map(|(_, f)| *f)
+            .or(self.shedding.sheddable_fraction)
+            .unwrap_or(load.sheddable_fraction)
+    }
+
     /// Checks the study against its grid: ids and bus numbers it names must exist, and there
     /// must be something to shed. Every problem is listed.
     pub fn check_against(&self, grid: &Grid, path: &Path) -> Result<(), Error> {
@@ -430,6 +452,14 @@ impl Study {
                         "no branch, machine or wind plant has this id",
                     )
                     .field("exclude", format!("\"{id}\"")),
+                );
+            }
+        }
+        for (id, _) in &self.shedding.sheddable_by_load {
+            if !grid.loads.iter().any(|l| &l.id == id) {
+                problems.push(
+                    Problem::new(None, "[shedding]", "no load has this id")
+                        .field("sheddable_by_load", format!("\"{id}\"")),
                 );
             }
         }
@@ -678,6 +708,7 @@ impl Default for ContingenciesIn {
 struct SheddingIn {
     buses: Vec<u32>,
     sheddable_fraction: Option<Num>,
+    sheddable_by_load: std::collections::BTreeMap<String, Num>,
     delay_min_s: Num,
     delay_max_s: Num,
     placement: Spanned<String>,
@@ -690,6 +721,7 @@ impl Default for SheddingIn {
         SheddingIn {
             buses: Vec::new(),
             sheddable_fraction: None,
+            sheddable_by_load: std::collections::BTreeMap::new(),
             delay_min_s: num(0.1),
             delay_max_s: num(0.2),
             placement: Spanned::new(0..0, "uniform".to_string()),
@@ -862,6 +894,32 @@ mod tests {
         let text = format!("{MINIMAL}[wind]\nspeed = 3.0\n");
         let e = parse_study(&text, Path::new("s.toml")).unwrap_err();
         assert!(matches!(e, Error::Syntax { line: 4, .. }), "{e}");
+    }
+
+    #[test]
+    fn a_named_load_s_share_beats_the_study_s_which_beats_the_grid_s() {
+        let text = format!(
+            "{MINIMAL}[shedding]\nsheddable_fraction = 0.3\nsheddable_by_load = {{ \"A\" = 0.1 }}\n"
+        );
+        let s = parse_study(&text, Path::new("s.toml")).unwrap();
+        let mut load = holdfast_core::Load {
+            id: "A".into(),
+            bus: holdfast_core::BusIdx(0),
+            p_pu: 1.0,
+            q_pu: 0.0,
+            voltage_dependence: holdfast_core::VoltageDependence::CONSTANT_POWER,
+            frequency_dependence: holdfast_core::FrequencyDependence::default(),
+            motor_share: 0.0,
+            motor: holdfast_core::MotorData::TYPICAL,
+            sheddable_fraction: 0.5,
+            priority: 0,
+            in_service: true,
+        };
+        assert_eq!(s.sheddable_fraction(&load), 0.1);
+        load.id = "B".into();
+        assert_eq!(s.sheddable_fraction(&load), 0.3);
+        let plain = parse_study(MINIMAL, Path::new("s.toml")).unwrap();
+        assert_eq!(plain.sheddable_fraction(&load), 0.5);
     }
 
     #[test]
