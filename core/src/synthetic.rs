@@ -262,20 +262,13 @@ pub fn regional_grid(
     let mut machines: Vec<SyncMachine> = Vec::new();
     let mut wind_plants: Vec<WindPlant> = Vec::new();
     let mut hubs = Vec::new();
-    let next_number = |buses: &Vec<Bus>, area: usize| {
-        let area = area as u32 + 1;
-        area * 1000 + buses.iter().filter(|b| b.area == area).count() as u32 + 1
-    };
-    let dist = |a: (f64, f64), b: (f64, f64)| ((a.0 - b.0).powi(2) + (a.1 - b.1).powi(2)).sqrt();
-    let mut steam_biggest: Option<(usize, f64)> = None;
-    for (a, plan) in areas.iter().enumerate() {
-        let area = a as u32 + 1;
-        // The 345 kV hub at the centre.
-        let hub = BusIdx(buses.len() as u32);
+    // A bus of area `area` (1-based), numbered area * 1000 + its place in the area.
+    let add_bus = |buses: &mut Vec<Bus>, area: u32, name: String, base_kv: f64| {
+        let number = area * 1000 + buses.iter().filter(|b| b.area == area).count() as u32 + 1;
         buses.push(Bus {
-            number: next_number(&buses, a),
-            name: format!("{} 345", plan.name),
-            base_kv: 345.0,
+            number,
+            name,
+            base_kv,
             v_min_pu: 0.95,
             v_max_pu: 1.05,
             area,
@@ -283,6 +276,14 @@ pub fn regional_grid(
             angle_set_rad: 0.0,
             stored_solution: None,
         });
+        BusIdx(buses.len() as u32 - 1)
+    };
+    let dist = |a: (f64, f64), b: (f64, f64)| ((a.0 - b.0).powi(2) + (a.1 - b.1).powi(2)).sqrt();
+    let mut steam_biggest: Option<(usize, f64)> = None;
+    for (a, plan) in areas.iter().enumerate() {
+        let area = a as u32 + 1;
+        // The 345 kV hub at the centre.
+        let hub = add_bus(&mut buses, area, format!("{} 345", plan.name), 345.0);
         pos.push(plan.centre_km);
         hubs.push(hub);
         // 230 kV substations spread over a square of 180 km around the centre.
@@ -292,17 +293,12 @@ pub fn regional_grid(
                 plan.centre_km.0 + rng.uniform(-90.0, 90.0),
                 plan.centre_km.1 + rng.uniform(-90.0, 90.0),
             );
-            buses.push(Bus {
-                number: next_number(&buses, a),
-                name: format!("{} 230 #{}", plan.name, k + 1),
-                base_kv: 230.0,
-                v_min_pu: 0.95,
-                v_max_pu: 1.05,
+            add_bus(
+                &mut buses,
                 area,
-                is_reference: false,
-                angle_set_rad: 0.0,
-                stored_solution: None,
-            });
+                format!("{} 230 #{}", plan.name, k + 1),
+                230.0,
+            );
             pos.push(p);
         }
         let local: Vec<usize> = (first..buses.len()).collect();
@@ -400,7 +396,6 @@ pub fn regional_grid(
         // Plants on their own 20 kV terminals, stepped up to a substation away from the hub.
         for (k, &(kind, size_mw)) in plan.plants.iter().enumerate() {
             let host = local[(k * 7 + 3) % local.len()];
-            let term = BusIdx(buses.len() as u32);
             let kind_name = match kind {
                 PlantKind::Hydro => "Hydro",
                 PlantKind::Steam => "Steam",
@@ -408,17 +403,7 @@ pub fn regional_grid(
                 PlantKind::Peaker => "Peaker",
             };
             let id = format!("{} {} {}", plan.name, kind_name, k + 1);
-            buses.push(Bus {
-                number: next_number(&buses, a),
-                name: format!("{id} 20"),
-                base_kv: 20.0,
-                v_min_pu: 0.95,
-                v_max_pu: 1.05,
-                area,
-                is_reference: false,
-                angle_set_rad: 0.0,
-                stored_solution: None,
-            });
+            let term = add_bus(&mut buses, area, format!("{id} 20"), 20.0);
             pos.push(pos[host]);
             let template = match kind {
                 PlantKind::Hydro => &t.hydro,

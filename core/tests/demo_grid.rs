@@ -10,9 +10,17 @@ use std::path::Path;
 use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{BranchIdx, Grid, Outages, format};
 
+fn scenario_grid(file: &str) -> Grid {
+    format::load_grid(
+        &Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("../scenarios")
+            .join(file),
+    )
+    .unwrap()
+}
+
 fn demo() -> Grid {
-    format::load_grid(&Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/quillmoor.toml"))
-        .unwrap()
+    scenario_grid("quillmoor.toml")
 }
 
 #[test]
@@ -162,8 +170,7 @@ mod contingencies {
 }
 
 fn large() -> Grid {
-    format::load_grid(&Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios/vellmark.toml"))
-        .unwrap()
+    scenario_grid("vellmark.toml")
 }
 
 #[test]

@@ -310,7 +310,6 @@ mod tests {
     struct Threshold {
         threshold: f64,
         bad: Option<(f64, f64)>,
-        calls: u32,
     }
 
     fn verdict(stable: bool) -> Verdict {
@@ -336,9 +335,12 @@ mod tests {
         }
     }
 
+    fn oracle(threshold: f64, bad: Option<(f64, f64)>) -> Threshold {
+        Threshold { threshold, bad }
+    }
+
     impl ShedOracle for Threshold {
         fn run(&mut self, x: f64) -> Result<Verdict, Error> {
-            self.calls += 1;
             let in_bad = self.bad.is_some_and(|(a, b)| x > a && x < b);
             Ok(verdict(x >= self.threshold && !in_bad))
         }
@@ -349,11 +351,7 @@ mod tests {
         // Synthetic monotone oracle with the exact minimum known: the label must be at or
         // above it and less than one tolerance above it.
         for threshold in [0.001, 0.137, 0.5, 0.731_9, 0.999] {
-            let mut o = Threshold {
-                threshold,
-                bad: None,
-                calls: 0,
-            };
+            let mut o = oracle(threshold, None);
             let (outcome, label, trials, non_mono, _) = bisect(&mut o, 1.0, 0.01, 100.0).unwrap();
             assert_eq!(outcome, Outcome::Shed);
             assert!(
@@ -368,20 +366,12 @@ mod tests {
 
     #[test]
     fn ends_of_the_range_give_no_shed_and_unsavable() {
-        let mut o = Threshold {
-            threshold: 0.0,
-            bad: None,
-            calls: 0,
-        };
+        let mut o = oracle(0.0, None);
         assert_eq!(
             bisect(&mut o, 1.0, 0.01, 1.0).unwrap().0,
             Outcome::NoShedNeeded
         );
-        let mut o = Threshold {
-            threshold: 2.0,
-            bad: None,
-            calls: 0,
-        };
+        let mut o = oracle(2.0, None);
         assert_eq!(
             bisect(&mut o, 1.0, 0.01, 1.0).unwrap().0,
             Outcome::Unsavable
@@ -391,11 +381,7 @@ mod tests {
     #[test]
     fn failing_with_all_shed_is_not_unsavable_when_less_shed_saves() {
         // Over-shedding fails (over-frequency) above 0.8; 0.3 and more, up to 0.8, is stable.
-        let mut o = Threshold {
-            threshold: 0.3,
-            bad: Some((0.8, 2.0)),
-            calls: 0,
-        };
+        let mut o = oracle(0.3, Some((0.8, 2.0)));
         let (outcome, label, _, _, _) = bisect(&mut o, 1.0, 0.01, 1.0).unwrap();
         assert_eq!(outcome, Outcome::Shed);
         assert!((0.3..=0.31).contains(&label), "{label}");
@@ -405,11 +391,7 @@ mod tests {
     fn an_unstable_band_above_the_first_stable_amount_is_flagged_and_skipped() {
         // Stable from 0.5, but unstable again in (0.505, 0.6): bisection lands on 0.5, the
         // check at 0.5 + 2 tol finds the band, and the search continues above it.
-        let mut o = Threshold {
-            threshold: 0.5,
-            bad: Some((0.505, 0.6)),
-            calls: 0,
-        };
+        let mut o = oracle(0.5, Some((0.505, 0.6)));
         let (outcome, label, _, non_mono, _) = bisect(&mut o, 1.0, 0.01, 1.0).unwrap();
         assert_eq!(outcome, Outcome::Shed);
         assert!(non_mono);
