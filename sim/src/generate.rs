@@ -326,6 +326,7 @@ pub fn build(
             message: format!("cannot start worker threads: {e}"),
         })?;
     let mut written = 0;
+    let mut done = BTreeSet::new();
     for &j in &todo {
         let (first, count) = manifest.shard_range(j);
         let samples: Vec<Sample> = pool.install(|| {
@@ -352,10 +353,18 @@ pub fn build(
         )?;
         written += 1;
         progress.shard_written(j);
-        // Other parts may write into the same folder: list what is there now.
-        let mut complete: BTreeSet<u32> = scan_shards(dir, &manifest)?.0;
-        complete.insert(j);
-        manifest.complete = complete.into_iter().collect();
+        // Other parts may write into the same folder: list the shard files there now (by name
+        // only; reading them all after every shard would cost a quadratic amount of I/O, and
+        // stats, merge and resume check the files themselves).
+        done.insert(j);
+        let complete: Vec<u32> = (0..shard_count)
+            .filter(|&s| {
+                done.contains(&s)
+                    || found.contains(&s)
+                    || (!damaged.contains(&s) && dir.join(shard_file_name(s)).is_file())
+            })
+            .collect();
+        manifest.complete = complete;
         manifest.write(dir)?;
     }
     Ok(BuildReport {
