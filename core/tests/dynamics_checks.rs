@@ -574,4 +574,9 @@ fn every_model_stays_flat_without_events() {
         eprintln!("flat run, demo grid at x{scale}: largest state change {drift:.1e}");
         assert!(drift < 1e-6, "demo grid x{scale}: drift {drift:e}");
     }
+    // The large demo grid (164 buses, 30 machines, 8 wind plants) at nominal load.
+    let large = format::load_grid(&common::scenario("vellmark.toml")).unwrap();
+    let drift = flat_run_drift(&large, MachineModelChoice::Detailed);
+    eprintln!("flat run, large demo grid: largest state change {drift:.1e}");
+    assert!(drift < 1e-6, "large demo grid: drift {drift:e}");
 }

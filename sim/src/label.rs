@@ -247,8 +247,8 @@ impl<'g> SimulationOracle<'g> {
         })
     }
 
-    /// Where a total amount goes: (bus number, MW) for every candidate that sheds.
-    pub fn placement_mw(&self, total_pu: f64) -> Vec<(u32, f64)> {
+    /// Where a total amount goes: (bus, pu) for every candidate that sheds.
+    fn placed(&self, total_pu: f64) -> Vec<(BusIdx, f64)> {
         place(
             self.cands,
             total_pu,
@@ -256,11 +256,19 @@ impl<'g> SimulationOracle<'g> {
             self.disturbance,
             self.distance,
         )
-        .iter()
+        .into_iter()
         .zip(self.cands)
-        .filter(|(p, _)| **p > 0.0)
-        .map(|(&p, c)| (self.bus_numbers[c.bus.get()], p * self.base_mva))
+        .filter(|(p, _)| *p > 0.0)
+        .map(|(p, c)| (c.bus, p))
         .collect()
+    }
+
+    /// Where a total amount goes: (bus number, MW) for every candidate that sheds.
+    pub fn placement_mw(&self, total_pu: f64) -> Vec<(u32, f64)> {
+        self.placed(total_pu)
+            .into_iter()
+            .map(|(bus, p)| (self.bus_numbers[bus.get()], p * self.base_mva))
+            .collect()
     }
 
     /// Whether the run already failed before the action time (then no shed can help).
@@ -270,21 +278,13 @@ impl<'g> SimulationOracle<'g> {
 
     /// The shed events of a total amount.
     pub fn shed_events(&self, total_pu: f64) -> Vec<TimedEvent> {
-        place(
-            self.cands,
-            total_pu,
-            self.placement,
-            self.disturbance,
-            self.distance,
-        )
-        .iter()
-        .zip(self.cands)
-        .filter(|(p, _)| **p > 0.0)
-        .map(|(&p_pu, c)| TimedEvent {
-            t_s: self.t_action_s,
-            event: Event::Shed { bus: c.bus, p_pu },
-        })
-        .collect()
+        self.placed(total_pu)
+            .into_iter()
+            .map(|(bus, p_pu)| TimedEvent {
+                t_s: self.t_action_s,
+                event: Event::Shed { bus, p_pu },
+            })
+            .collect()
     }
 }
 
