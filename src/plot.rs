@@ -8,6 +8,36 @@ use holdfast_core::dynamics::Trajectory;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
+/// Runs `$draw` on an SVG or PNG drawing area for `$path` (by extension) and writes the file.
+macro_rules! on_backend {
+    ($path:expr, $size:expr, $draw:expr) => {{
+        let path: &Path = $path;
+        let ext = path
+            .extension()
+            .and_then(|e| e.to_str())
+            .map(str::to_ascii_lowercase);
+        match ext.as_deref() {
+            Some("svg") => {
+                let root = SVGBackend::new(path, $size).into_drawing_area();
+                $draw(&root)?;
+                root.present()
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+            }
+            Some("png") => {
+                let root = BitMapBackend::new(path, $size).into_drawing_area();
+                $draw(&root)?;
+                root.present()
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+            }
+            _ => bail!(
+                "plot file {}: use the extension .svg or .png",
+                path.display()
+            ),
+        }
+        Ok(())
+    }};
+}
+
 /// DejaVu Sans Mono (free licence, `assets/fonts/DejaVu-LICENSE.txt`), bundled so that text
 /// renders the same on every machine without a system font library.
 const FONT: &[u8] = include_bytes!("../assets/fonts/DejaVuSansMono.ttf");
@@ -49,30 +79,7 @@ pub(crate) fn write_plot(path: &Path, title: &str, tr: &Trajectory, buses: &[usi
             series: vec![("frequency".to_string(), tr.frequency_hz.as_slice())],
         },
     ];
-    let size = (1100, 1200);
-    let ext = path
-        .extension()
-        .and_then(|e| e.to_str())
-        .map(str::to_ascii_lowercase);
-    match ext.as_deref() {
-        Some("svg") => {
-            let root = SVGBackend::new(path, size).into_drawing_area();
-            draw(&root, title, tr, &panels)?;
-            root.present()
-                .with_context(|| format!("cannot write {}", path.display()))?;
-        }
-        Some("png") => {
-            let root = BitMapBackend::new(path, size).into_drawing_area();
-            draw(&root, title, tr, &panels)?;
-            root.present()
-                .with_context(|| format!("cannot write {}", path.display()))?;
-        }
-        _ => bail!(
-            "plot file {}: use the extension .svg or .png",
-            path.display()
-        ),
-    }
-    Ok(())
+    on_backend!(path, (1100, 1200), |root| draw(root, title, tr, &panels))
 }
 
 fn draw<DB: DrawingBackend>(
@@ -152,4 +159,132 @@ fn range(values: impl Iterator<Item = f64>) -> (f64, f64) {
     }
     let pad = ((hi - lo) * 0.08).max(1e-3 * hi.abs().max(1.0));
     (lo - pad, hi + pad)
+}
+
+/// One evaluated case for the plot: labelled total, advised total (MW), and whether the
+/// re-simulation was stable (`None`: not simulated).
+pub(crate) struct EvaluatedPoint {
+    pub(crate) true_mw: f64,
+    pub(crate) advised_mw: f64,
+    pub(crate) stable: Option<bool>,
+}
+
+/// Writes an evaluation plot: advised vs labelled totals (left; stable runs in blue, failed
+/// in red, not simulated in grey) and the histogram of advised minus labelled (right).
+pub(crate) fn write_evaluation_plot(
+    path: &Path,
+    title: &str,
+    points: &[EvaluatedPoint],
+) -> Result<()> {
+    let _ = plotters::style::register_font("sans-serif", FontStyle::Normal, FONT);
+    on_backend!(path, (1300, 620), |root| draw_evaluation(
+        root, title, points
+    ))
+}
+
+fn draw_evaluation<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    title: &str,
+    points: &[EvaluatedPoint],
+) -> Result<()>
+where
+    DB::ErrorType: 'static,
+{
+    let err = |e: DrawingAreaErrorKind<DB::ErrorType>| anyhow::anyhow!("plot: {e:?}");
+    root.fill(&WHITE).map_err(err)?;
+    let root = root.titled(title, ("sans-serif", 22)).map_err(err)?;
+    let (left, right) = root.split_horizontally(650);
+    let (_, hi) = range(points.iter().flat_map(|p| [p.true_mw, p.advised_mw]));
+    let hi = hi.max(1.0);
+    let mut chart = ChartBuilder::on(&left)
+        .caption("Advised vs labelled total shed", ("sans-serif", 17))
+        .margin(14)
+        .x_label_area_size(40)
+        .y_label_area_size(64)
+        .build_cartesian_2d(0.0..hi, 0.0..hi)
+        .map_err(err)?;
+    chart
+        .configure_mesh()
+        .x_desc("labelled (MW)")
+        .y_desc("advised (MW)")
+        .label_style(("sans-serif", 13))
+        .draw()
+        .map_err(err)?;
+    chart
+        .draw_series(std::iter::once(PathElement::new(
+            vec![(0.0, 0.0), (hi, hi)],
+            ShapeStyle::from(&BLACK.mix(0.5)).stroke_width(1),
+        )))
+        .map_err(err)?;
+    for (which, colour, name) in [
+        (Some(true), BLUE.mix(0.55), "stable"),
+        (Some(false), RED.mix(0.8), "not stable"),
+        (None, BLACK.mix(0.35), "not simulated"),
+    ] {
+        let pts: Vec<(f64, f64)> = points
+            .iter()
+            .filter(|p| p.stable == which)
+            .map(|p| (p.true_mw, p.advised_mw))
+            .collect();
+        if pts.is_empty() {
+            continue;
+        }
+        chart
+            .draw_series(
+                pts.into_iter()
+                    .map(|xy| Circle::new(xy, 3, colour.filled())),
+            )
+            .map_err(err)?
+            .label(name)
+            .legend(move |(x, y)| Circle::new((x + 8, y), 4, colour.filled()));
+    }
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::UpperLeft)
+        .label_font(("sans-serif", 12))
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK.mix(0.3))
+        .draw()
+        .map_err(err)?;
+
+    let errors: Vec<f64> = points.iter().map(|p| p.advised_mw - p.true_mw).collect();
+    let (lo, hi) = range(errors.iter().copied());
+    let bins = 30usize;
+    let width = (hi - lo) / bins as f64;
+    let mut counts = vec![0u32; bins];
+    for e in &errors {
+        let k = (((e - lo) / width) as usize).min(bins - 1);
+        counts[k] += 1;
+    }
+    let top = f64::from(counts.iter().copied().max().unwrap_or(1).max(1)) * 1.1;
+    let mut chart = ChartBuilder::on(&right)
+        .caption("Advised minus labelled", ("sans-serif", 17))
+        .margin(14)
+        .x_label_area_size(40)
+        .y_label_area_size(56)
+        .build_cartesian_2d(lo..hi, 0.0..top)
+        .map_err(err)?;
+    chart
+        .configure_mesh()
+        .x_desc("MW (negative: under-shed)")
+        .y_desc("cases")
+        .label_style(("sans-serif", 13))
+        .draw()
+        .map_err(err)?;
+    chart
+        .draw_series(counts.iter().enumerate().map(|(k, &c)| {
+            let x0 = lo + k as f64 * width;
+            Rectangle::new(
+                [(x0, 0.0), (x0 + width, f64::from(c))],
+                BLUE.mix(0.5).filled(),
+            )
+        }))
+        .map_err(err)?;
+    chart
+        .draw_series(std::iter::once(PathElement::new(
+            vec![(0.0, 0.0), (0.0, top)],
+            ShapeStyle::from(&BLACK.mix(0.6)).stroke_width(1),
+        )))
+        .map_err(err)?;
+    Ok(())
 }

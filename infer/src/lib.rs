@@ -1,9 +1,20 @@
-//! Holdfast's lean inference library (not built yet).
+//! Holdfast's lean inference library: the feature schema, the model file and a plain-Rust
+//! forward pass.
 //!
-//! This crate will own the serving contract shared by training and inference: the feature schema
-//! and featurisation of a grid state into bus-graph and branch-graph inputs, the model-file format,
-//! a plain-Rust forward pass, and the `Advisor` that re-checks an advised shed with the dynamic
-//! engine of `holdfast-core` and falls back to a safer action when the check fails.
-//! It never depends on a training framework, rayon or indicatif.
+//! This crate owns the contract between training and serving: [`features`] turns a grid state
+//! and the contingency that just happened into bus-graph and branch-graph inputs, [`model`]
+//! defines the model file (weights as plain arrays, normalisation, safety margin, grid
+//! fingerprint, checksum), and [`forward`] runs the network without a training framework.
+//! `holdfast-learn` trains against these same definitions, so the two cannot disagree.
+//! It never depends on a training framework, rayon or indicatif (a test enforces this).
+//!
+//! The re-check of an advised action with the dynamic engine and the fallback to a safer one
+//! are not built yet.
 
-pub use holdfast_core as core_crate;
+pub mod features;
+pub mod forward;
+pub mod model;
+
+pub use features::{Disturbance, DisturbanceKind, GraphInput, GridContext, Snapshot, featurise};
+pub use forward::{Network, apply_margin};
+pub use model::{Architecture, ModelError, ModelFile};

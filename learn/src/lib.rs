@@ -1,10 +1,21 @@
-//! Holdfast's training pipeline (not built yet).
+//! Holdfast's training pipeline: GraphSAGE over the bus and branch graphs, and a plain
+//! multilayer-perceptron baseline, trained on burn's CPU backend with an under-shed-averse
+//! loss; split-conformal safety margin; export to the model file that `holdfast-infer` reads.
 //!
-//! This crate will own the GraphSAGE model over the bus and branch graphs and its baselines, the
-//! under-shed-averse loss, training with early stopping and checkpoints, conformal calibration of
-//! the safety margin, evaluation by re-simulation, and export to the model file that
-//! `holdfast-infer` reads. It will run on burn's CPU backend; burn is added with that work, so
-//! that builds stay quick until then.
+//! - [`data`]: dataset folder to featurised examples and splits (by operating point).
+//! - [`loss`]: the averse, neutral and pinball losses, on tensors and in plain arithmetic.
+//! - [`net`]: batches and the forward pass on burn tensors.
+//! - [`evaluate`]: metrics and re-simulation of every case with the advised shed.
+//! - [`train`]: Adam, early stopping, checkpoints, fine-tuning, calibration.
+//!
+//! The features, the model file and the serving forward pass are defined in `holdfast-infer`,
+//! so training and serving cannot disagree.
 
-pub use holdfast_infer as infer_crate;
-pub use holdfast_sim as sim_crate;
+pub mod data;
+pub mod evaluate;
+pub mod loss;
+pub mod net;
+pub mod train;
+
+#[cfg(not(any(feature = "flex", feature = "ndarray")))]
+compile_error!("enable one burn backend: cargo feature `flex` (the default) or `ndarray`");

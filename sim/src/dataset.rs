@@ -18,7 +18,6 @@ use std::fs::{self, File};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-use holdfast_core::Grid;
 use serde::{Deserialize, Serialize};
 
 use crate::contingency::Contingency;
@@ -229,11 +228,7 @@ pub struct ShardHeader {
     pub count: u32,
 }
 
-/// The grid's fingerprint: FNV-1a 64 of its canonical grid file (so a re-formatted but equal
-/// grid file keeps it).
-pub fn grid_fingerprint(grid: &Grid) -> Result<u64, holdfast_core::Error> {
-    Ok(fnv1a64(holdfast_core::format::write_grid(grid)?.as_bytes()))
-}
+pub use holdfast_core::format::grid_fingerprint;
 
 /// The file name of shard `j`.
 pub fn shard_file_name(j: u32) -> String {

@@ -19,7 +19,10 @@ use crate::dataset::{
 use crate::label::{Label, Outcome, RunSummary, SimulationOracle, bisect};
 use crate::sampling::draw_operating_point;
 use crate::shed::candidates;
-use crate::study::{Study, read_study};
+use crate::study::{Study, parse_study, read_study};
+
+/// The copy of the study kept in every dataset folder.
+pub const STUDY_FILE: &str = "study.toml";
 
 /// Everything needed to label any sample of a study; built once, shared by all threads.
 pub struct Generator {
@@ -54,6 +57,60 @@ impl Generator {
             faults,
             distance,
         })
+    }
+
+    /// The generator of a dataset folder, from its own copies of the grid and the study
+    /// (`study` replaces the folder's copy, for datasets built before the copy was kept). The
+    /// study must be the one the dataset was built with (same hash).
+    pub fn for_dataset(dir: &Path, study: Option<&Path>) -> Result<Generator, DatasetError> {
+        let manifest = Manifest::read(dir)?;
+        let study_path = study.map_or_else(|| dir.join(STUDY_FILE), Path::to_path_buf);
+        let text = std::fs::read_to_string(&study_path).map_err(|e| {
+            if study.is_none() && e.kind() == std::io::ErrorKind::NotFound {
+                DatasetError::Folder {
+                    path: dir.to_path_buf(),
+                    message: format!(
+                        "no {STUDY_FILE} here (datasets built before it was kept): pass the \
+                         study file the dataset was built with"
+                    ),
+                }
+            } else {
+                io_error(&study_path)(e)
+            }
+        })?;
+        let mut parsed = parse_study(&text, &study_path)?;
+        if hex(parsed.hash) != manifest.study_hash {
+            return Err(DatasetError::Folder {
+                path: study_path,
+                message: format!(
+                    "this study (hash {}) is not the one dataset {} was built with (hash {})",
+                    hex(parsed.hash),
+                    dir.display(),
+                    manifest.study_hash
+                ),
+            });
+        }
+        parsed.grid_path = dir.join("grid.toml");
+        let grid = format::load_grid(&parsed.grid_path)?;
+        Generator::new(parsed, grid, &study_path)
+    }
+
+    /// Re-runs sample `index` with a given shed (bus, pu) at its action time and returns the
+    /// verdict; the error says why the sample cannot be simulated.
+    pub fn check_action(
+        &self,
+        index: u64,
+        shed_pu: &[(holdfast_core::BusIdx, f64)],
+    ) -> Result<RunSummary, String> {
+        let (_, prepared) = self.prepare(index);
+        let p = match prepared {
+            Some(Ok(p)) => p,
+            Some(Err((_, message))) => return Err(message),
+            None => return Err(format!("sample {index}: every draw was rejected")),
+        };
+        let mut oracle = self.oracle(&p).map_err(|e| e.to_string())?;
+        let verdict = oracle.run_placed(shed_pu).map_err(|e| e.to_string())?;
+        Ok(RunSummary::from(&verdict))
     }
 
     /// The contingency set's fault lists.
@@ -305,6 +362,7 @@ pub fn build(
     // The grid, canonical, so the dataset can be read without the original files.
     let grid_text = format::write_grid(&generator.grid)?;
     write_atomic(&dir.join("grid.toml"), grid_text.as_bytes())?;
+    write_atomic(&dir.join(STUDY_FILE), study.text.as_bytes())?;
     manifest.complete = found.iter().copied().collect();
     manifest.write(dir)?;
     let owned: Vec<u32> = (0..shard_count).filter(|j| j % n == k - 1).collect();

@@ -288,6 +288,27 @@ impl<'g> SimulationOracle<'g> {
     }
 }
 
+impl SimulationOracle<'_> {
+    /// Continues the snapshot with a given shed, (bus, pu) at the action time, to the end.
+    pub fn run_placed(&mut self, shed_pu: &[(BusIdx, f64)]) -> Result<Verdict, Error> {
+        self.runs += 1;
+        let mut sim = self.snapshot.clone();
+        let events: Vec<TimedEvent> = shed_pu
+            .iter()
+            .filter(|(_, p)| *p > 0.0)
+            .map(|&(bus, p_pu)| TimedEvent {
+                t_s: self.t_action_s,
+                event: Event::Shed { bus, p_pu },
+            })
+            .collect();
+        if !events.is_empty() {
+            sim.add_events(&events)?;
+        }
+        sim.run_to(self.end_s);
+        Ok(sim.finish().verdict)
+    }
+}
+
 impl ShedOracle for SimulationOracle<'_> {
     fn run(&mut self, total_pu: f64) -> Result<Verdict, Error> {
         self.runs += 1;

@@ -15,20 +15,34 @@ pub struct Candidate {
     pub sheddable_pu: f64,
 }
 
+/// Shed-able active load per load, pu, under the study's shedding settings, with the loads
+/// at `load_p_pu` (a load out of service, or not consuming, sheds nothing).
+pub fn sheddable_per_load(grid: &Grid, study: &Study, load_p_pu: &[f64]) -> Vec<f64> {
+    grid.loads
+        .iter()
+        .zip(load_p_pu)
+        .map(|(l, &p)| {
+            let allowed = study.shedding.buses.is_empty()
+                || study
+                    .shedding
+                    .buses
+                    .contains(&grid.buses[l.bus.get()].number);
+            if l.in_service && p > 0.0 && allowed {
+                p * study.sheddable_fraction(l)
+            } else {
+                0.0
+            }
+        })
+        .collect()
+}
+
 /// The candidate buses of a grid (at its own load level) under the study's shedding settings,
 /// in bus order; buses with nothing to shed are left out.
 pub fn candidates(grid: &Grid, study: &Study) -> Vec<Candidate> {
+    let own: Vec<f64> = grid.loads.iter().map(|l| l.p_pu).collect();
     let mut per_bus = vec![0.0; grid.n_buses()];
-    for l in grid.loads.iter().filter(|l| l.in_service && l.p_pu > 0.0) {
-        let allowed = study.shedding.buses.is_empty()
-            || study
-                .shedding
-                .buses
-                .contains(&grid.buses[l.bus.get()].number);
-        if allowed {
-            let fraction = study.sheddable_fraction(l);
-            per_bus[l.bus.get()] += l.p_pu * fraction;
-        }
+    for (l, s) in grid.loads.iter().zip(sheddable_per_load(grid, study, &own)) {
+        per_bus[l.bus.get()] += s;
     }
     per_bus
         .iter()

@@ -2,6 +2,7 @@
 //! bisect. Our own TOML format, documented by the annotated example
 //! `scenarios/quillmoor-study.toml`; every problem is reported with file, line, field and value.
 
+pub use holdfast_core::format::fnv1a64;
 use std::path::{Path, PathBuf};
 
 use holdfast_core::dynamics::{MachineModelChoice, SimulationOptions, StabilityCriteria};
@@ -42,6 +43,9 @@ pub struct Study {
     pub simulation: SimulationOptions,
     /// The study text's hash (FNV-1a 64 of the file as read), written into every shard.
     pub hash: u64,
+    /// The study text as read; datasets keep a copy (`study.toml`) so that their samples can
+    /// be re-simulated without the original files.
+    pub text: String,
 }
 
 /// System load level `L ~ N(mean, sd)` clipped to `[min, max]` (a share of the grid file's
@@ -415,6 +419,7 @@ pub fn parse_study(text: &str, path: &Path) -> Result<Study, Error> {
             ..SimulationOptions::default()
         },
         hash: fnv1a64(text.as_bytes()),
+        text: text.to_string(),
     })
 }
 
@@ -486,16 +491,6 @@ impl Study {
             })
         }
     }
-}
-
-/// FNV-1a, 64 bits: a stable fingerprint of bytes (not a defence against tampering).
-pub fn fnv1a64(bytes: &[u8]) -> u64 {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in bytes {
-        h ^= u64::from(b);
-        h = h.wrapping_mul(0x0100_0000_01b3);
-    }
-    h
 }
 
 /// Collects problems with the line of the offending value.

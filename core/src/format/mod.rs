@@ -65,6 +65,22 @@ fn peek_version(text: &str, path: &Path) -> Result<i64, Error> {
     }
 }
 
+/// FNV-1a, 64 bits: a stable fingerprint of bytes (not a defence against tampering).
+pub fn fnv1a64(bytes: &[u8]) -> u64 {
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for &b in bytes {
+        h ^= u64::from(b);
+        h = h.wrapping_mul(0x0100_0000_01b3);
+    }
+    h
+}
+
+/// The grid's fingerprint: FNV-1a 64 of its canonical grid file, so a re-formatted but equal
+/// grid file keeps it. Datasets and model files carry it to tell which grid they belong to.
+pub fn grid_fingerprint(grid: &Grid) -> Result<u64, Error> {
+    Ok(fnv1a64(write_grid(grid)?.as_bytes()))
+}
+
 /// A TOML parse error of `text` (read from `path`) as an [`Error::Syntax`] with line and column;
 /// shared by every TOML file of ours (grids, scenarios, studies).
 pub fn syntax_error(text: &str, path: &Path, e: &toml::de::Error) -> Error {

@@ -1,0 +1,632 @@
+//! Features: how a grid state and the contingency that just happened become the inputs of the
+//! bus-graph and branch-graph networks.
+//!
+//! Training (`holdfast-learn`) and serving use this one definition, so the two cannot disagree.
+//! Everything is per unit on the grid's base and radians, as in `holdfast-core`.
+//!
+//! # The two graphs
+//! - **Bus graph**: one node per bus; an edge joins two buses when at least one branch between
+//!   them is closed before the contingency and not tripped by it. Outages therefore show as
+//!   removed edges, and one model serves every topology of the grid.
+//! - **Branch graph**: one node per branch; an edge joins two branches that share a bus, when
+//!   both are in service after the contingency. An open or tripped branch keeps its node (its
+//!   features say so) but has no edges.
+//! - **Incidence**: each bus lists its branches in service after the contingency; the branch
+//!   embeddings are fused into their end buses over this list.
+//!
+//! # Conventions
+//! Pre-contingency quantities describe the state just before the disturbance (what the
+//! snapshot holds); the generation and inertia features leave out the unit the contingency
+//! trips, whose output appears instead as `lost_p_pu` at its bus. The system features are the
+//! same at every bus (broadcast), so a few message-passing layers still see the whole grid's
+//! balance.
+
+use holdfast_core::topology::{DistanceMatrix, electrical_distance};
+use holdfast_core::ybus::branch_admittance;
+use holdfast_core::{BranchIdx, BranchKind, BusIdx, Complex, Grid, MachineIdx, Outages, WindIdx};
+
+/// Version of the feature definitions below; stored in model files. Any change to the list,
+/// order or meaning of a feature raises it.
+pub const FEATURE_SET_VERSION: u32 = 1;
+
+/// Bus-node features, in order.
+pub const BUS_FEATURES: [&str; 22] = [
+    "load_p_pu",
+    "load_q_pu",
+    "machine_p_pu",
+    "machine_q_pu",
+    "wind_p_pu",
+    "v_pu",
+    "angle_rad",
+    "inertia_pu_s",
+    "sheddable_pu",
+    "motor_share",
+    "is_disturbance_bus",
+    "is_fault_bus",
+    "lost_p_pu",
+    "distance_to_disturbance_pu",
+    "system_lost_p_share",
+    "system_inertia_s",
+    "system_load_pu",
+    "system_wind_share",
+    "kind_branch_fault",
+    "kind_double_fault",
+    "kind_machine_trip",
+    "kind_wind_trip",
+];
+
+/// Branch-node features, in order.
+pub const BRANCH_FEATURES: [&str; 9] = [
+    "p_from_pu",
+    "q_from_pu",
+    "loading_share",
+    "r_pu",
+    "x_pu",
+    "in_service",
+    "tripped",
+    "is_transformer",
+    "touches_disturbance_bus",
+];
+
+/// Number of bus features.
+pub const N_BUS_FEATURES: usize = BUS_FEATURES.len();
+/// Number of branch features.
+pub const N_BRANCH_FEATURES: usize = BRANCH_FEATURES.len();
+
+/// Index of `sheddable_pu` among the bus features.
+pub const BUS_SHEDDABLE: usize = 8;
+
+/// Electrical distances above this (including buses in another island, at infinite distance)
+/// are stored as this, pu.
+pub const DISTANCE_CAP_PU: f64 = 10.0;
+
+/// Kind of disturbance.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
+pub enum DisturbanceKind {
+    /// Fault at a branch end, cleared by tripping the branch.
+    BranchFault,
+    /// Fault at a bus, cleared by tripping two branches there.
+    DoubleFault,
+    /// Loss of a synchronous machine.
+    MachineTrip,
+    /// Loss of a wind plant.
+    WindTrip,
+}
+
+impl DisturbanceKind {
+    /// Every kind, in the order of the one-hot features.
+    pub const ALL: [DisturbanceKind; 4] = [
+        DisturbanceKind::BranchFault,
+        DisturbanceKind::DoubleFault,
+        DisturbanceKind::MachineTrip,
+        DisturbanceKind::WindTrip,
+    ];
+
+    /// Short name.
+    pub fn name(self) -> &'static str {
+        match self {
+            DisturbanceKind::BranchFault => "branch fault",
+            DisturbanceKind::DoubleFault => "double fault",
+            DisturbanceKind::MachineTrip => "machine trip",
+            DisturbanceKind::WindTrip => "wind-plant trip",
+        }
+    }
+}
+
+/// The contingency that just happened, by element index.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Disturbance {
+    /// Kind.
+    pub kind: DisturbanceKind,
+    /// The bus nearest the disturbance (faulted bus, or the tripped unit's bus).
+    pub disturbance_bus: BusIdx,
+    /// Faulted bus, for faults.
+    pub fault_bus: Option<BusIdx>,
+    /// Branches tripped.
+    pub tripped_branches: Vec<BranchIdx>,
+    /// Machine tripped.
+    pub tripped_machine: Option<MachineIdx>,
+    /// Wind plant tripped.
+    pub tripped_wind: Option<WindIdx>,
+}
+
+/// The grid's state just before the contingency, per element in grid order, engineering units.
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Snapshot {
+    /// Voltage magnitude per bus, pu.
+    pub bus_v_pu: Vec<f64>,
+    /// Voltage angle per bus, degrees.
+    pub bus_angle_deg: Vec<f64>,
+    /// Active load per load, MW (0 for a load out of service).
+    pub load_p_mw: Vec<f64>,
+    /// Reactive load per load, Mvar.
+    pub load_q_mvar: Vec<f64>,
+    /// Load that may be shed per load, MW (at most `load_p_mw`).
+    pub load_sheddable_mw: Vec<f64>,
+    /// Whether each synchronous machine is connected.
+    pub machine_on: Vec<bool>,
+    /// Output per machine, MW.
+    pub machine_p_mw: Vec<f64>,
+    /// Reactive output per machine, Mvar.
+    pub machine_q_mvar: Vec<f64>,
+    /// Output per wind plant, MW.
+    pub wind_p_mw: Vec<f64>,
+    /// Whether each branch is closed.
+    pub branch_closed: Vec<bool>,
+}
+
+/// Why a snapshot or disturbance cannot be turned into features.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum FeatureError {
+    /// A per-element list has the wrong length.
+    #[error("snapshot field `{field}` has {got} entries; the grid has {expected}")]
+    Length {
+        /// The field.
+        field: &'static str,
+        /// Entries expected.
+        expected: usize,
+        /// Entries found.
+        got: usize,
+    },
+    /// A value is NaN or infinite, or out of its physical range.
+    #[error("snapshot field `{field}`, entry {index}: value {value} {problem}")]
+    Value {
+        /// The field.
+        field: &'static str,
+        /// Entry (element index).
+        index: usize,
+        /// The value.
+        value: f64,
+        /// What is wrong.
+        problem: &'static str,
+    },
+    /// The disturbance names an element the grid does not have.
+    #[error("disturbance field `{field}`: index {index} is out of range (the grid has {count})")]
+    Element {
+        /// The field.
+        field: &'static str,
+        /// The index given.
+        index: usize,
+        /// How many such elements the grid has.
+        count: usize,
+    },
+}
+
+/// Neighbour lists in compressed form: the neighbours of node `i` are
+/// `index[start[i]..start[i + 1]]`.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Csr {
+    /// Row starts, one more than the number of nodes.
+    pub start: Vec<u32>,
+    /// Neighbour indices.
+    pub index: Vec<u32>,
+}
+
+impl Csr {
+    /// From one list per node; each list is sorted and de-duplicated.
+    pub fn from_lists(lists: Vec<Vec<u32>>) -> Csr {
+        let mut start = Vec::with_capacity(lists.len() + 1);
+        let mut index = Vec::new();
+        start.push(0);
+        for mut l in lists {
+            l.sort_unstable();
+            l.dedup();
+            index.extend_from_slice(&l);
+            start.push(index.len() as u32);
+        }
+        Csr { start, index }
+    }
+
+    /// Number of nodes.
+    pub fn len(&self) -> usize {
+        self.start.len().saturating_sub(1)
+    }
+
+    /// Whether there are no nodes.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The neighbours of node `i`.
+    pub fn neighbours(&self, i: usize) -> &[u32] {
+        &self.index[self.start[i] as usize..self.start[i + 1] as usize]
+    }
+}
+
+/// Grid data the features need, computed once per grid.
+#[derive(Clone, Debug)]
+pub struct GridContext {
+    s_base_mva: f64,
+    n_bus: usize,
+    branch_ends: Vec<(usize, usize)>,
+    branch_blocks: Vec<[Complex; 4]>,
+    branch_r_pu: Vec<f64>,
+    branch_x_pu: Vec<f64>,
+    branch_rating_pu: Vec<f64>,
+    branch_is_transformer: Vec<bool>,
+    branch_in_service: Vec<bool>,
+    load_bus: Vec<usize>,
+    load_motor_share: Vec<f64>,
+    machine_bus: Vec<usize>,
+    machine_inertia_pu_s: Vec<f64>,
+    wind_bus: Vec<usize>,
+    distance: DistanceMatrix,
+}
+
+impl GridContext {
+    /// Precomputes branch admittances and the electrical distances of the grid as given
+    /// (branches in service per the grid file; the contingency's trips are not removed, so the
+    /// distance to the disturbance is that of the pre-contingency network).
+    pub fn new(grid: &Grid) -> GridContext {
+        let s = grid.s_base_mva;
+        GridContext {
+            s_base_mva: s,
+            n_bus: grid.n_buses(),
+            branch_ends: grid
+                .branches
+                .iter()
+                .map(|b| (b.from.get(), b.to.get()))
+                .collect(),
+            branch_blocks: grid
+                .branches
+                .iter()
+                .map(|b| branch_admittance(b.r_pu, b.x_pu, b.b_pu, b.tap_ratio, b.phase_shift_rad))
+                .collect(),
+            branch_r_pu: grid.branches.iter().map(|b| b.r_pu).collect(),
+            branch_x_pu: grid.branches.iter().map(|b| b.x_pu).collect(),
+            branch_rating_pu: grid.branches.iter().map(|b| b.rating_mva / s).collect(),
+            branch_is_transformer: grid
+                .branches
+                .iter()
+                .map(|b| b.kind == BranchKind::Transformer)
+                .collect(),
+            branch_in_service: grid.branches.iter().map(|b| b.in_service).collect(),
+            load_bus: grid.loads.iter().map(|l| l.bus.get()).collect(),
+            load_motor_share: grid.loads.iter().map(|l| l.motor_share).collect(),
+            machine_bus: grid.machines.iter().map(|m| m.bus.get()).collect(),
+            machine_inertia_pu_s: grid
+                .machines
+                .iter()
+                .map(|m| {
+                    m.dynamics
+                        .as_ref()
+                        .map_or(0.0, |d| d.h_s * m.rating_mva / s)
+                })
+                .collect(),
+            wind_bus: grid.wind_plants.iter().map(|w| w.bus.get()).collect(),
+            distance: electrical_distance(grid, &Outages::none()),
+        }
+    }
+
+    /// Number of buses.
+    pub fn n_bus(&self) -> usize {
+        self.n_bus
+    }
+
+    /// Number of branches.
+    pub fn n_branch(&self) -> usize {
+        self.branch_ends.len()
+    }
+
+    /// The system base, MVA.
+    pub fn s_base_mva(&self) -> f64 {
+        self.s_base_mva
+    }
+}
+
+/// The network inputs of one sample.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct GraphInput {
+    /// Bus features, row-major `[n_bus, N_BUS_FEATURES]`, not normalised.
+    pub bus_x: Vec<f32>,
+    /// Branch features, row-major `[n_branch, N_BRANCH_FEATURES]`, not normalised.
+    pub branch_x: Vec<f32>,
+    /// Bus-graph neighbours.
+    pub bus_adj: Csr,
+    /// Branch-graph neighbours.
+    pub branch_adj: Csr,
+    /// Branches in service after the contingency, per bus.
+    pub bus_branches: Csr,
+    /// Load that may be shed per bus, pu (the bound of the per-bus output).
+    pub sheddable_pu: Vec<f64>,
+}
+
+impl GraphInput {
+    /// Number of buses.
+    pub fn n_bus(&self) -> usize {
+        self.sheddable_pu.len()
+    }
+
+    /// Number of branches.
+    pub fn n_branch(&self) -> usize {
+        self.branch_x.len() / N_BRANCH_FEATURES
+    }
+}
+
+fn check_len<T>(field: &'static str, v: &[T], expected: usize) -> Result<(), FeatureError> {
+    if v.len() == expected {
+        Ok(())
+    } else {
+        Err(FeatureError::Length {
+            field,
+            expected,
+            got: v.len(),
+        })
+    }
+}
+
+fn check_finite(field: &'static str, v: &[f64]) -> Result<(), FeatureError> {
+    match v.iter().position(|x| !x.is_finite()) {
+        None => Ok(()),
+        Some(index) => Err(FeatureError::Value {
+            field,
+            index,
+            value: v[index],
+            problem: "is not a finite number",
+        }),
+    }
+}
+
+fn check_element(field: &'static str, index: usize, count: usize) -> Result<(), FeatureError> {
+    if index < count {
+        Ok(())
+    } else {
+        Err(FeatureError::Element {
+            field,
+            index,
+            count,
+        })
+    }
+}
+
+/// Checks a snapshot and a disturbance against the grid.
+pub fn validate(
+    ctx: &GridContext,
+    snap: &Snapshot,
+    dist: &Disturbance,
+) -> Result<(), FeatureError> {
+    let n_load = ctx.load_bus.len();
+    let n_machine = ctx.machine_bus.len();
+    let n_wind = ctx.wind_bus.len();
+    check_len("bus_v_pu", &snap.bus_v_pu, ctx.n_bus)?;
+    check_len("bus_angle_deg", &snap.bus_angle_deg, ctx.n_bus)?;
+    check_len("load_p_mw", &snap.load_p_mw, n_load)?;
+    check_len("load_q_mvar", &snap.load_q_mvar, n_load)?;
+    check_len("load_sheddable_mw", &snap.load_sheddable_mw, n_load)?;
+    check_len("machine_on", &snap.machine_on, n_machine)?;
+    check_len("machine_p_mw", &snap.machine_p_mw, n_machine)?;
+    check_len("machine_q_mvar", &snap.machine_q_mvar, n_machine)?;
+    check_len("wind_p_mw", &snap.wind_p_mw, n_wind)?;
+    check_len("branch_closed", &snap.branch_closed, ctx.n_branch())?;
+    for (field, v) in [
+        ("bus_v_pu", &snap.bus_v_pu),
+        ("bus_angle_deg", &snap.bus_angle_deg),
+        ("load_p_mw", &snap.load_p_mw),
+        ("load_q_mvar", &snap.load_q_mvar),
+        ("load_sheddable_mw", &snap.load_sheddable_mw),
+        ("machine_p_mw", &snap.machine_p_mw),
+        ("machine_q_mvar", &snap.machine_q_mvar),
+        ("wind_p_mw", &snap.wind_p_mw),
+    ] {
+        check_finite(field, v)?;
+    }
+    if let Some(index) = snap
+        .bus_v_pu
+        .iter()
+        .position(|&v| !(0.0..=3.0).contains(&v))
+    {
+        return Err(FeatureError::Value {
+            field: "bus_v_pu",
+            index,
+            value: snap.bus_v_pu[index],
+            problem: "is outside 0..3 pu",
+        });
+    }
+    for (index, (&s, &p)) in snap
+        .load_sheddable_mw
+        .iter()
+        .zip(&snap.load_p_mw)
+        .enumerate()
+    {
+        if s < 0.0 || s > p.max(0.0) + 1e-6 * p.abs().max(1.0) {
+            return Err(FeatureError::Value {
+                field: "load_sheddable_mw",
+                index,
+                value: s,
+                problem: "is negative or above the load's load_p_mw",
+            });
+        }
+    }
+    check_element("disturbance_bus", dist.disturbance_bus.get(), ctx.n_bus)?;
+    if let Some(b) = dist.fault_bus {
+        check_element("fault_bus", b.get(), ctx.n_bus)?;
+    }
+    for b in &dist.tripped_branches {
+        check_element("tripped_branches", b.get(), ctx.n_branch())?;
+    }
+    if let Some(m) = dist.tripped_machine {
+        check_element("tripped_machine", m.get(), n_machine)?;
+    }
+    if let Some(w) = dist.tripped_wind {
+        check_element("tripped_wind", w.get(), n_wind)?;
+    }
+    Ok(())
+}
+
+/// Turns a snapshot and the contingency into network inputs (validating both first).
+pub fn featurise(
+    ctx: &GridContext,
+    snap: &Snapshot,
+    dist: &Disturbance,
+) -> Result<GraphInput, FeatureError> {
+    validate(ctx, snap, dist)?;
+    let s = ctx.s_base_mva;
+    let n = ctx.n_bus;
+    let m = ctx.n_branch();
+    let fb = N_BUS_FEATURES;
+    let mut bus = vec![0.0f64; n * fb];
+    let mut sheddable_pu = vec![0.0; n];
+
+    let mut load_total = 0.0;
+    let mut motor_weighted = vec![0.0; n];
+    for (k, &b) in ctx.load_bus.iter().enumerate() {
+        let p = snap.load_p_mw[k] / s;
+        bus[b * fb] += p;
+        bus[b * fb + 1] += snap.load_q_mvar[k] / s;
+        sheddable_pu[b] += snap.load_sheddable_mw[k] / s;
+        motor_weighted[b] += p.max(0.0) * ctx.load_motor_share[k];
+        load_total += p;
+    }
+    let mut lost_total = 0.0;
+    let mut inertia_total = 0.0;
+    for (k, &b) in ctx.machine_bus.iter().enumerate() {
+        if !snap.machine_on[k] {
+            continue;
+        }
+        let p = snap.machine_p_mw[k] / s;
+        if dist.tripped_machine == Some(MachineIdx(k as u32)) {
+            bus[b * fb + 12] += p;
+            lost_total += p;
+        } else {
+            bus[b * fb + 2] += p;
+            bus[b * fb + 3] += snap.machine_q_mvar[k] / s;
+            bus[b * fb + 7] += ctx.machine_inertia_pu_s[k];
+            inertia_total += ctx.machine_inertia_pu_s[k];
+        }
+    }
+    let mut wind_total = 0.0;
+    for (k, &b) in ctx.wind_bus.iter().enumerate() {
+        let p = snap.wind_p_mw[k] / s;
+        if dist.tripped_wind == Some(WindIdx(k as u32)) {
+            bus[b * fb + 12] += p;
+            lost_total += p;
+        } else {
+            bus[b * fb + 4] += p;
+            wind_total += p;
+        }
+    }
+    let d_bus = dist.disturbance_bus;
+    let kind_at = DisturbanceKind::ALL
+        .iter()
+        .position(|k| *k == dist.kind)
+        .unwrap_or(0);
+    let load_den = load_total.max(1e-9);
+    for b in 0..n {
+        let row = &mut bus[b * fb..(b + 1) * fb];
+        row[5] = snap.bus_v_pu[b];
+        row[6] = snap.bus_angle_deg[b].to_radians();
+        row[8] = sheddable_pu[b];
+        row[9] = if row[0] > 1e-12 {
+            motor_weighted[b] / row[0]
+        } else {
+            0.0
+        };
+        row[10] = f64::from(u8::from(b == d_bus.get()));
+        row[11] = f64::from(u8::from(dist.fault_bus == Some(BusIdx(b as u32))));
+        let d = ctx.distance.get(BusIdx(b as u32), d_bus);
+        row[13] = if d.is_finite() {
+            d.min(DISTANCE_CAP_PU)
+        } else {
+            DISTANCE_CAP_PU
+        };
+        row[14] = lost_total / load_den;
+        row[15] = inertia_total / load_den;
+        row[16] = load_total;
+        row[17] = wind_total / load_den;
+        row[18 + kind_at] = 1.0;
+    }
+
+    // Branches: state before and after the contingency, flows from the snapshot's voltages.
+    let fe = N_BRANCH_FEATURES;
+    let mut branch = vec![0.0f64; m * fe];
+    let mut after = vec![false; m];
+    let voltage =
+        |b: usize| Complex::from_polar(snap.bus_v_pu[b], snap.bus_angle_deg[b].to_radians());
+    for k in 0..m {
+        let closed = ctx.branch_in_service[k] && snap.branch_closed[k];
+        let tripped = dist.tripped_branches.contains(&BranchIdx(k as u32));
+        after[k] = closed && !tripped;
+        let (f, t) = ctx.branch_ends[k];
+        let row = &mut branch[k * fe..(k + 1) * fe];
+        if closed {
+            let y = ctx.branch_blocks[k];
+            let (vf, vt) = (voltage(f), voltage(t));
+            let i_f = y[0] * vf + y[1] * vt;
+            let i_t = y[2] * vf + y[3] * vt;
+            let s_f = vf * i_f.conj();
+            let s_t = vt * i_t.conj();
+            row[0] = s_f.re;
+            row[1] = s_f.im;
+            let rating = ctx.branch_rating_pu[k];
+            row[2] = if rating > 0.0 {
+                s_f.norm().max(s_t.norm()) / rating
+            } else {
+                0.0
+            };
+        }
+        row[3] = ctx.branch_r_pu[k];
+        row[4] = ctx.branch_x_pu[k];
+        row[5] = f64::from(u8::from(after[k]));
+        row[6] = f64::from(u8::from(tripped));
+        row[7] = f64::from(u8::from(ctx.branch_is_transformer[k]));
+        row[8] = f64::from(u8::from(f == d_bus.get() || t == d_bus.get()));
+    }
+
+    let mut bus_lists = vec![Vec::new(); n];
+    let mut incident = vec![Vec::new(); n];
+    for k in (0..m).filter(|&k| after[k]) {
+        let (f, t) = ctx.branch_ends[k];
+        if f != t {
+            bus_lists[f].push(t as u32);
+            bus_lists[t].push(f as u32);
+        }
+        incident[f].push(k as u32);
+        incident[t].push(k as u32);
+    }
+    let mut branch_lists = vec![Vec::new(); m];
+    for at_bus in &incident {
+        for &a in at_bus {
+            for &b in at_bus {
+                if a != b {
+                    branch_lists[a as usize].push(b);
+                }
+            }
+        }
+    }
+    Ok(GraphInput {
+        bus_x: bus.iter().map(|&x| x as f32).collect(),
+        branch_x: branch.iter().map(|&x| x as f32).collect(),
+        bus_adj: Csr::from_lists(bus_lists),
+        branch_adj: Csr::from_lists(branch_lists),
+        bus_branches: Csr::from_lists(incident),
+        sheddable_pu,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn csr_sorts_and_deduplicates() {
+        let c = Csr::from_lists(vec![vec![2, 1, 2], vec![], vec![0]]);
+        assert_eq!(c.len(), 3);
+        assert_eq!(c.neighbours(0), &[1, 2]);
+        assert!(c.neighbours(1).is_empty());
+        assert_eq!(c.neighbours(2), &[0]);
+    }
+
+    #[test]
+    fn feature_names_are_unique() {
+        let mut names: Vec<&str> = BUS_FEATURES
+            .iter()
+            .chain(&BRANCH_FEATURES)
+            .copied()
+            .collect();
+        names.sort_unstable();
+        names.dedup();
+        assert_eq!(names.len(), N_BUS_FEATURES + N_BRANCH_FEATURES);
+        assert_eq!(BUS_FEATURES[BUS_SHEDDABLE], "sheddable_pu");
+    }
+}

@@ -1,0 +1,600 @@
+//! Training: Adam over shuffled mini-batches, validation with the serving forward pass, early
+//! stopping, a checkpoint after every epoch (resumable), fine-tuning from a model file, and
+//! the split-conformal safety margin.
+
+use std::path::{Path, PathBuf};
+
+use burn::prelude::*;
+use holdfast_infer::forward::Network;
+use holdfast_infer::model::{
+    Architecture, Array, Margin, ModelError, ModelFile, Normalisation, TrainingInfo, write_atomic,
+};
+use holdfast_sim::study::fnv1a64;
+use rand::SeedableRng;
+use rand::seq::SliceRandom;
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::data::{Dataset, Example, Split, SplitRule};
+use crate::loss::Loss;
+use crate::net::{build_batch, fit_normalisation, forward, init_parameters, parameter_tensors};
+
+/// The training device: burn's CPU backend chosen at build time, with autodiff.
+pub fn training_device() -> Device {
+    cpu_device().autodiff()
+}
+
+/// burn's CPU backend chosen at build time (`flex` by default, `ndarray` as an opt-in).
+pub fn cpu_device() -> Device {
+    #[cfg(feature = "flex")]
+    {
+        Device::flex()
+    }
+    #[cfg(all(feature = "ndarray", not(feature = "flex")))]
+    #[allow(deprecated)] // reason: the opt-in backend is deprecated upstream; kept on purpose
+    {
+        Device::ndarray()
+    }
+}
+
+/// Name of the backend in this build.
+pub fn backend_name() -> &'static str {
+    if cfg!(feature = "flex") {
+        "flex"
+    } else {
+        "ndarray"
+    }
+}
+
+/// Errors of training.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum TrainError {
+    /// A model or checkpoint file.
+    #[error(transparent)]
+    Model(#[from] ModelError),
+    /// The settings cannot be used.
+    #[error("{0}")]
+    Settings(String),
+    /// A checkpoint that cannot be used.
+    #[error("{path}: {message}")]
+    Checkpoint {
+        /// The checkpoint file.
+        path: PathBuf,
+        /// What is wrong and what to do.
+        message: String,
+    },
+}
+
+/// Training settings.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TrainConfig {
+    /// Network shape.
+    pub architecture: Architecture,
+    /// Loss.
+    pub loss: Loss,
+    /// Most epochs.
+    pub epochs: usize,
+    /// Samples per batch.
+    pub batch: usize,
+    /// Adam's learning rate.
+    pub learning_rate: f64,
+    /// Epochs without a better validation loss before stopping.
+    pub patience: usize,
+    /// Seed of initialisation, shuffling and neighbour sampling.
+    pub seed: u64,
+    /// Neighbours kept per node and layer while training (`None`: all).
+    pub neighbours: Option<usize>,
+    /// How samples are split.
+    pub split: SplitRule,
+    /// Under-shed rate the safety margin is chosen for.
+    pub target_under_rate: f64,
+}
+
+impl TrainConfig {
+    /// Settings as `name=value` pairs, for the model file and the checkpoint.
+    pub fn settings(&self) -> Vec<(String, String)> {
+        vec![
+            ("architecture".into(), format!("{:?}", self.architecture)),
+            ("loss".into(), self.loss.describe()),
+            ("epochs".into(), self.epochs.to_string()),
+            ("batch".into(), self.batch.to_string()),
+            ("learning_rate".into(), self.learning_rate.to_string()),
+            ("patience".into(), self.patience.to_string()),
+            ("seed".into(), self.seed.to_string()),
+            ("neighbours".into(), format!("{:?}", self.neighbours)),
+            ("split".into(), format!("{:?}", self.split)),
+            (
+                "target_under_rate".into(),
+                self.target_under_rate.to_string(),
+            ),
+            ("backend".into(), backend_name().into()),
+        ]
+    }
+}
+
+/// Adam (Kingma and Ba): `m = b1 m + (1 - b1) g`, `v = b2 v + (1 - b2) g^2`,
+/// `w -= lr * m_hat / (sqrt(v_hat) + eps)` with bias-corrected `m_hat`, `v_hat`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Adam {
+    /// First-moment estimates, per parameter array.
+    pub m: Vec<Vec<f32>>,
+    /// Second-moment estimates.
+    pub v: Vec<Vec<f32>>,
+    /// Steps taken.
+    pub t: u64,
+}
+
+impl Adam {
+    /// Decay of the first moment.
+    pub const BETA1: f64 = 0.9;
+    /// Decay of the second moment.
+    pub const BETA2: f64 = 0.999;
+    /// Added to the root of the second moment.
+    pub const EPS: f64 = 1e-8;
+
+    /// Zero moments for these parameters.
+    pub fn new(params: &[Array]) -> Adam {
+        Adam {
+            m: params.iter().map(|a| vec![0.0; a.data.len()]).collect(),
+            v: params.iter().map(|a| vec![0.0; a.data.len()]).collect(),
+            t: 0,
+        }
+    }
+
+    /// One step over every parameter array with its gradient.
+    pub fn step(&mut self, params: &mut [Array], grads: &[Vec<f32>], lr: f64) {
+        self.t += 1;
+        let t = self.t as i32;
+        let c1 = 1.0 - Self::BETA1.powi(t);
+        let c2 = 1.0 - Self::BETA2.powi(t);
+        for (k, (p, g)) in params.iter_mut().zip(grads).enumerate() {
+            for (i, (w, &gi)) in p.data.iter_mut().zip(g).enumerate() {
+                let gi = f64::from(gi);
+                let m = Self::BETA1 * f64::from(self.m[k][i]) + (1.0 - Self::BETA1) * gi;
+                let v = Self::BETA2 * f64::from(self.v[k][i]) + (1.0 - Self::BETA2) * gi * gi;
+                self.m[k][i] = m as f32;
+                self.v[k][i] = v as f32;
+                let update = lr * (m / c1) / ((v / c2).sqrt() + Self::EPS);
+                *w = (f64::from(*w) - update) as f32;
+            }
+        }
+    }
+}
+
+/// Everything needed to continue training after a crash, written after every epoch.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Checkpoint {
+    /// Fingerprint of the settings and dataset; a resume must match it.
+    pub key: String,
+    /// Epochs completed.
+    pub epochs_done: usize,
+    /// Current parameters.
+    pub params: Vec<Array>,
+    /// Optimiser state.
+    pub adam: Adam,
+    /// Normalisation in use.
+    pub normalisation: Normalisation,
+    /// Best parameters so far, their epoch and validation loss.
+    pub best: Vec<Array>,
+    /// Epoch of the best parameters, counted from 1.
+    pub best_epoch: usize,
+    /// Their validation loss.
+    pub best_loss: f64,
+    /// Per epoch: mean training loss, validation loss.
+    pub history: Vec<(f64, f64)>,
+}
+
+const CHECKPOINT_MAGIC: &[u8; 8] = b"HFCHKPT1";
+
+impl Checkpoint {
+    fn write(&self, path: &Path) -> Result<(), TrainError> {
+        let body =
+            bincode::serde::encode_to_vec(self, bincode::config::standard()).unwrap_or_default();
+        let mut out = CHECKPOINT_MAGIC.to_vec();
+        out.extend_from_slice(&body);
+        out.extend_from_slice(&fnv1a64(&out).to_le_bytes());
+        Ok(write_atomic(path, &out)?)
+    }
+
+    fn read(path: &Path) -> Result<Checkpoint, TrainError> {
+        let bad = |message: String| TrainError::Checkpoint {
+            path: path.to_path_buf(),
+            message,
+        };
+        let bytes = std::fs::read(path).map_err(|e| bad(e.to_string()))?;
+        if bytes.len() < 16 || &bytes[..8] != CHECKPOINT_MAGIC {
+            return Err(bad("not a Holdfast checkpoint".into()));
+        }
+        let (content, sum) = bytes.split_at(bytes.len() - 8);
+        let mut s = [0u8; 8];
+        s.copy_from_slice(sum);
+        if fnv1a64(content) != u64::from_le_bytes(s) {
+            return Err(bad(
+                "checksum mismatch: the checkpoint is damaged; delete it to start afresh".into(),
+            ));
+        }
+        let cfg = bincode::config::standard().with_limit::<{ 1 << 30 }>();
+        bincode::serde::decode_from_slice(&content[8..], cfg)
+            .map(|(c, _)| c)
+            .map_err(|e| bad(format!("cannot decode: {e}")))
+    }
+}
+
+/// Reports training progress.
+pub trait TrainProgress {
+    /// An epoch starts with this many batches.
+    fn epoch_start(&self, epoch: usize, batches: usize);
+    /// A batch finished with this loss.
+    fn batch(&self, loss: f64);
+    /// An epoch finished.
+    fn epoch_end(&self, epoch: usize, train_loss: f64, validation_loss: f64, best: bool);
+}
+
+/// Reports nothing.
+pub struct Silent;
+
+impl TrainProgress for Silent {
+    fn epoch_start(&self, _: usize, _: usize) {}
+    fn batch(&self, _: f64) {}
+    fn epoch_end(&self, _: usize, _: f64, _: f64, _: bool) {}
+}
+
+/// Where training starts from and where it keeps its checkpoint.
+#[derive(Clone, Debug, Default)]
+pub struct TrainRun {
+    /// Checkpoint file (none: no checkpoints).
+    pub checkpoint: Option<PathBuf>,
+    /// Continue from the checkpoint if it exists.
+    pub resume: bool,
+    /// Start from this model's weights and normalisation (fine-tuning).
+    pub init_from: Option<ModelFile>,
+}
+
+/// The outcome of training.
+pub struct Trained {
+    /// The model file (margin and record filled in).
+    pub model: ModelFile,
+    /// Per epoch: training and validation loss.
+    pub history: Vec<(f64, f64)>,
+    /// Seconds per epoch, measured.
+    pub epoch_seconds: Vec<f64>,
+}
+
+/// A model file holding these parameters.
+pub fn model_file(
+    arch: &Architecture,
+    norm: &Normalisation,
+    params: &[Array],
+    data: &Dataset,
+) -> ModelFile {
+    let weights = params
+        .iter()
+        .map(|a| Array {
+            name: a.name.clone(),
+            shape: a.shape.clone(),
+            data: a.data.clone(),
+        })
+        .collect();
+    ModelFile::new(
+        arch.clone(),
+        norm.clone(),
+        weights,
+        data.generator.fingerprint,
+        data.grid().name.clone(),
+    )
+}
+
+/// Predictions of the serving forward pass (no margin), per example.
+pub fn predict(net: &Network, examples: &[&Example]) -> Result<Vec<Vec<f64>>, ModelError> {
+    examples.iter().map(|e| net.predict(&e.input)).collect()
+}
+
+fn validation_loss(
+    loss: &Loss,
+    model: &ModelFile,
+    examples: &[&Example],
+) -> Result<f64, ModelError> {
+    let net = Network::new(model)?;
+    let pred = predict(&net, examples)?;
+    let target: Vec<Vec<f64>> = examples.iter().map(|e| e.target_pu.clone()).collect();
+    Ok(loss.value(&pred, &target))
+}
+
+fn run_key(config: &TrainConfig, data: &Dataset) -> String {
+    let text = format!(
+        "{:?}|{}|{}|{}",
+        config.settings(),
+        data.manifest.study_hash,
+        data.manifest.samples,
+        data.examples.len()
+    );
+    format!("{:016x}", fnv1a64(text.as_bytes()))
+}
+
+/// Trains a model on the dataset's training split.
+pub fn train(
+    data: &Dataset,
+    config: &TrainConfig,
+    run: &TrainRun,
+    progress: &dyn TrainProgress,
+) -> Result<Trained, TrainError> {
+    if config.batch == 0 || config.epochs == 0 {
+        return Err(TrainError::Settings(
+            "batch size and epochs must be at least 1".into(),
+        ));
+    }
+    let train_set = data.split(Split::Train);
+    let val_set = data.split(Split::Validation);
+    if train_set.is_empty() || val_set.is_empty() {
+        return Err(TrainError::Settings(format!(
+            "{} training and {} validation samples: build a larger dataset",
+            train_set.len(),
+            val_set.len()
+        )));
+    }
+    let arch = &config.architecture;
+    let key = run_key(config, data);
+    let resumed = match (&run.checkpoint, run.resume) {
+        (Some(path), true) if path.is_file() => {
+            let c = Checkpoint::read(path)?;
+            if c.key != key {
+                return Err(TrainError::Checkpoint {
+                    path: path.clone(),
+                    message: "written by a run with other settings or another dataset; \
+                              delete it or repeat those settings"
+                        .into(),
+                });
+            }
+            Some(c)
+        }
+        (Some(path), false) if path.is_file() => {
+            return Err(TrainError::Checkpoint {
+                path: path.clone(),
+                message: "a checkpoint exists: pass --resume to continue it, or delete it".into(),
+            });
+        }
+        _ => None,
+    };
+    let mut state = match resumed {
+        Some(c) => c,
+        None => {
+            let (params, normalisation) = match &run.init_from {
+                Some(m) => {
+                    if m.architecture != *arch {
+                        return Err(TrainError::Settings(format!(
+                            "--init-from model has architecture {:?}; this run asks for {:?}",
+                            m.architecture, arch
+                        )));
+                    }
+                    let params = arch
+                        .parameters()
+                        .into_iter()
+                        .map(|(name, _)| m.array(&name).cloned())
+                        .collect::<Option<Vec<Array>>>()
+                        .ok_or_else(|| {
+                            TrainError::Settings("--init-from model lacks weights".into())
+                        })?;
+                    (params, m.normalisation.clone())
+                }
+                None => {
+                    let mut init_rng = ChaCha8Rng::seed_from_u64(config.seed);
+                    init_rng.set_stream(u64::MAX);
+                    (
+                        init_parameters(arch, &mut init_rng),
+                        fit_normalisation(&train_set),
+                    )
+                }
+            };
+            Checkpoint {
+                key,
+                epochs_done: 0,
+                adam: Adam::new(&params),
+                best: params.clone(),
+                params,
+                normalisation,
+                best_epoch: 0,
+                best_loss: f64::INFINITY,
+                history: Vec::new(),
+            }
+        }
+    };
+    let device = training_device();
+    let mut epoch_seconds = Vec::new();
+    while state.epochs_done < config.epochs
+        && state.epochs_done.saturating_sub(state.best_epoch) < config.patience.max(1)
+    {
+        let epoch = state.epochs_done + 1;
+        let started = std::time::Instant::now();
+        // Each epoch's shuffle and neighbour draws depend only on (seed, epoch), so a resumed
+        // run repeats an uninterrupted one.
+        let mut rng = ChaCha8Rng::seed_from_u64(config.seed);
+        rng.set_stream(epoch as u64);
+        let mut order: Vec<&Example> = train_set.clone();
+        order.shuffle(&mut rng);
+        let batches = order.len().div_ceil(config.batch);
+        progress.epoch_start(epoch, batches);
+        let mut sum = 0.0;
+        for chunk in order.chunks(config.batch) {
+            let batch = build_batch(
+                chunk,
+                arch,
+                &state.normalisation,
+                config.neighbours,
+                &mut rng,
+                &device,
+            );
+            let tensors = parameter_tensors(&state.params, &device, true);
+            let pred = forward(arch, &tensors, &batch);
+            let loss = config.loss.tensor(pred, batch.target.clone());
+            let value = f64::from(loss.clone().into_scalar::<f32>());
+            let grads = loss.backward();
+            let g: Vec<Vec<f32>> = tensors
+                .iter()
+                .zip(&state.params)
+                .map(|(t, a)| {
+                    t.grad(&grads)
+                        .and_then(|g| g.into_data().try_into_vec::<f32>().ok())
+                        .unwrap_or_else(|| vec![0.0; a.data.len()])
+                })
+                .collect();
+            state.adam.step(&mut state.params, &g, config.learning_rate);
+            sum += value * chunk.len() as f64;
+            progress.batch(value);
+        }
+        let train_loss = sum / order.len() as f64;
+        let current = model_file(arch, &state.normalisation, &state.params, data);
+        let val = validation_loss(&config.loss, &current, &val_set)?;
+        let improved = val < state.best_loss;
+        if improved {
+            state.best_loss = val;
+            state.best_epoch = epoch;
+            state.best = state.params.clone();
+        }
+        state.history.push((train_loss, val));
+        state.epochs_done = epoch;
+        epoch_seconds.push(started.elapsed().as_secs_f64());
+        if let Some(path) = &run.checkpoint {
+            state.write(path)?;
+        }
+        progress.epoch_end(epoch, train_loss, val, improved);
+        if !train_loss.is_finite() {
+            return Err(TrainError::Settings(format!(
+                "the training loss became {train_loss} in epoch {epoch}: lower the learning rate"
+            )));
+        }
+    }
+    let mut model = model_file(arch, &state.normalisation, &state.best, data);
+    let cal = data.split(Split::Calibration);
+    model.margin = calibrate(&model, &cal, config.target_under_rate)?;
+    model.training = TrainingInfo {
+        dataset: data.dir.display().to_string(),
+        study: data.manifest.study_name.clone(),
+        study_hash: data.manifest.study_hash.clone(),
+        split_seed: config.split.seed,
+        split_shares: config.split.shares,
+        loss: config.loss.describe(),
+        split_sizes: [
+            train_set.len(),
+            val_set.len(),
+            cal.len(),
+            data.split(Split::Test).len(),
+        ],
+        seed: config.seed,
+        epochs_run: state.epochs_done,
+        best_epoch: state.best_epoch,
+        validation_loss: state.best_loss,
+        settings: config.settings(),
+    };
+    Ok(Trained {
+        model,
+        history: state.history,
+        epoch_seconds,
+    })
+}
+
+/// Total shed with margin share `share`: `sum_i min(s_i, p_i + share * s_i)`.
+fn total_with_margin(pred: &[f64], sheddable: &[f64], share: f64) -> f64 {
+    pred.iter()
+        .zip(sheddable)
+        .map(|(&p, &s)| (p + share * s).min(s))
+        .sum()
+}
+
+/// The smallest margin share that lifts this prediction's total to `target_pu` (0 if it is
+/// there already; 1 sheds everything).
+pub fn needed_margin(pred: &[f64], sheddable: &[f64], target_pu: f64) -> f64 {
+    if total_with_margin(pred, sheddable, 0.0) >= target_pu {
+        return 0.0;
+    }
+    let (mut lo, mut hi) = (0.0, 1.0);
+    for _ in 0..60 {
+        let mid = 0.5 * (lo + hi);
+        if total_with_margin(pred, sheddable, mid) >= target_pu {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    hi
+}
+
+/// Split-conformal margin: over the calibration samples that need shed, the
+/// `ceil((n + 1)(1 - alpha))`-th smallest needed margin, so that the under-shed rate on new
+/// samples from the same distribution is at most `alpha` (Vovk et al.; Angelopoulos and Bates,
+/// "A gentle introduction to conformal prediction", 2021, section 1).
+pub fn conformal_margin(mut needed: Vec<f64>, alpha: f64) -> f64 {
+    let n = needed.len();
+    if n == 0 {
+        return 0.0;
+    }
+    needed.sort_by(f64::total_cmp);
+    let rank = (((n + 1) as f64) * (1.0 - alpha)).ceil() as usize;
+    if rank == 0 {
+        0.0
+    } else if rank > n {
+        1.0
+    } else {
+        needed[rank - 1]
+    }
+}
+
+/// Chooses the model's safety margin on the calibration split.
+pub fn calibrate(
+    model: &ModelFile,
+    cal: &[&Example],
+    target_under_rate: f64,
+) -> Result<Margin, ModelError> {
+    let net = Network::new(model)?;
+    let mut needed = Vec::new();
+    for e in cal.iter().filter(|e| e.needs_shed()) {
+        let p = net.predict(&e.input)?;
+        needed.push(needed_margin(&p, &e.input.sheddable_pu, e.total_pu));
+    }
+    Ok(Margin {
+        share_of_sheddable: conformal_margin(needed.clone(), target_under_rate),
+        target_under_rate,
+        calibration_samples: needed.len(),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn conformal_rank_follows_the_formula() {
+        // n = 9, alpha = 0.2: rank ceil(10 * 0.8) = 8.
+        let needed: Vec<f64> = (1..=9).map(|k| k as f64 / 10.0).collect();
+        assert_eq!(conformal_margin(needed.clone(), 0.2), 0.8);
+        // alpha so small that the rank passes n: shed everything.
+        assert_eq!(conformal_margin(needed, 0.01), 1.0);
+        assert_eq!(conformal_margin(Vec::new(), 0.1), 0.0);
+    }
+
+    #[test]
+    fn needed_margin_reaches_the_target_exactly() {
+        let pred = [0.1, 0.0, 0.5];
+        let s = [0.5, 0.2, 0.5];
+        // Closed form: at share m the totals are min(.5, .1 + .5m) + min(.2, .2m) + .5;
+        // a target of 0.8 needs .1 + .5m + .2m = .3, m = 2/7.
+        let m = needed_margin(&pred, &s, 0.8);
+        assert!((m - 2.0 / 7.0).abs() < 1e-12, "{m}");
+        assert_eq!(needed_margin(&pred, &s, 0.5), 0.0);
+    }
+
+    #[test]
+    fn adam_first_step_moves_each_weight_by_the_learning_rate() {
+        // With bias correction, the first step is lr * g / (|g| + eps) = lr * sign(g)
+        // (Kingma and Ba, 2015, section 2.1: the effective step is bounded by lr).
+        let mut p = vec![Array {
+            name: "w".into(),
+            shape: vec![2],
+            data: vec![1.0, -1.0],
+        }];
+        let mut adam = Adam::new(&p);
+        adam.step(&mut p, &[vec![0.5, -3.0]], 0.1);
+        assert!((p[0].data[0] - 0.9).abs() < 1e-6);
+        assert!((p[0].data[1] + 0.9).abs() < 1e-6);
+    }
+}
