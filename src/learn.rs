@@ -50,7 +50,7 @@ pub(crate) struct TrainOptions {
     #[arg(long, default_value_t = 2)]
     layers: usize,
     /// GraphSAGE layers on the branch graph (0: no branch tower).
-    #[arg(long, default_value_t = 2)]
+    #[arg(long, default_value_t = 1)]
     branch_layers: usize,
     /// Training loss.
     #[arg(long, value_enum, default_value = "averse")]

@@ -16,6 +16,9 @@ use clap::{Parser, Subcommand};
 use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{Grid, Outages, cdf, format};
 
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 /// The bundled demo grid: fictional, built from typical parameter values (see its header).
 const DEMO_GRID: &str = include_str!("../scenarios/quillmoor.toml");
 const DEMO_GRID_NAME: &str = "scenarios/quillmoor.toml";

@@ -608,6 +608,227 @@ pub fn featurise(
 mod tests {
     use super::*;
 
+    /// Three buses in a ring (lossless lines, x = 0.1 pu), a machine at bus 2, a load at bus 3.
+    fn ring() -> Grid {
+        let text = r#"
+format_version = 1
+name = "three-bus ring"
+s_base_mva = 100.0
+frequency_hz = 50.0
+[[bus]]
+id = 1
+name = "A"
+base_kv = 230.0
+reference = true
+[[bus]]
+id = 2
+name = "B"
+base_kv = 230.0
+[[bus]]
+id = 3
+name = "C"
+base_kv = 230.0
+[[line]]
+id = "A-B"
+from = 1
+to = 2
+r_pu = 0.0
+x_pu = 0.1
+rating_mva = 200.0
+[[line]]
+id = "B-C"
+from = 2
+to = 3
+r_pu = 0.0
+x_pu = 0.1
+[[line]]
+id = "A-C"
+from = 1
+to = 3
+r_pu = 0.0
+x_pu = 0.1
+[[machine]]
+id = "G1"
+bus = 1
+p_mw = 0.0
+v_set_pu = 1.0
+rating_mva = 300.0
+[machine.dynamics]
+h_s = 5.0
+xd_pu = 1.8
+xq_pu = 1.7
+xd_transient_pu = 0.3
+xq_transient_pu = 0.55
+xl_pu = 0.15
+td0_transient_s = 6.5
+[[machine]]
+id = "G2"
+bus = 2
+p_mw = 50.0
+v_set_pu = 1.0
+rating_mva = 100.0
+[machine.dynamics]
+h_s = 4.0
+xd_pu = 1.8
+xq_pu = 1.7
+xd_transient_pu = 0.3
+xq_transient_pu = 0.55
+xl_pu = 0.15
+td0_transient_s = 6.5
+[[load]]
+id = "Town"
+bus = 3
+p_mw = 120.0
+q_mvar = 30.0
+motor_share = 0.5
+sheddable_fraction = 0.25
+"#;
+        holdfast_core::format::parse_grid(text, "ring.toml".as_ref()).unwrap()
+    }
+
+    fn snapshot() -> Snapshot {
+        Snapshot {
+            bus_v_pu: vec![1.0, 0.98, 0.97],
+            bus_angle_deg: vec![0.0, -5.0, -8.0],
+            load_p_mw: vec![120.0],
+            load_q_mvar: vec![30.0],
+            load_sheddable_mw: vec![30.0],
+            machine_on: vec![true, true],
+            machine_p_mw: vec![70.0, 50.0],
+            machine_q_mvar: vec![20.0, 10.0],
+            wind_p_mw: vec![],
+            branch_closed: vec![true; 3],
+        }
+    }
+
+    fn bus_feature(x: &GraphInput, bus: usize, name: &str) -> f32 {
+        let k = BUS_FEATURES.iter().position(|n| *n == name).unwrap();
+        x.bus_x[bus * N_BUS_FEATURES + k]
+    }
+
+    fn branch_feature(x: &GraphInput, branch: usize, name: &str) -> f32 {
+        let k = BRANCH_FEATURES.iter().position(|n| *n == name).unwrap();
+        x.branch_x[branch * N_BRANCH_FEATURES + k]
+    }
+
+    #[test]
+    fn lossless_line_flows_match_the_closed_form() {
+        // Power over a lossless line (e.g. Kundur, Power System Stability and Control, 1994,
+        // section 6.1): P = V1 V2 sin(d12) / X, Q1 = (V1^2 - V1 V2 cos(d12)) / X.
+        let grid = ring();
+        let ctx = GridContext::new(&grid);
+        let dist = Disturbance {
+            kind: DisturbanceKind::MachineTrip,
+            disturbance_bus: BusIdx(1),
+            fault_bus: None,
+            tripped_branches: vec![],
+            tripped_machine: Some(MachineIdx(1)),
+            tripped_wind: None,
+        };
+        let x = featurise(&ctx, &snapshot(), &dist).unwrap();
+        let d = 5f64.to_radians();
+        let p = 0.98 * d.sin() / 0.1;
+        let q = (1.0 - 0.98 * d.cos()) / 0.1;
+        assert!((f64::from(branch_feature(&x, 0, "p_from_pu")) - p).abs() < 1e-5);
+        assert!((f64::from(branch_feature(&x, 0, "q_from_pu")) - q).abs() < 1e-5);
+        // Loading: the larger end's |S| over 2 pu; the to end carries the same P and
+        // Q2 = (V2^2 - V1 V2 cos d) / X in magnitude.
+        let q2 = (0.98f64 * 0.98 - 0.98 * d.cos()) / 0.1;
+        let s_max = p.hypot(q).max(p.hypot(q2));
+        assert!((f64::from(branch_feature(&x, 0, "loading_share")) - s_max / 2.0).abs() < 1e-5);
+        // A branch without a rating reports no loading.
+        assert_eq!(branch_feature(&x, 1, "loading_share"), 0.0);
+
+        // The tripped machine's output is lost at its bus, not generated there, and its inertia
+        // is gone: only G1's 5 s x 300 MVA / 100 MVA = 15 pu s remains.
+        assert!((bus_feature(&x, 1, "lost_p_pu") - 0.5).abs() < 1e-6);
+        assert_eq!(bus_feature(&x, 1, "machine_p_pu"), 0.0);
+        assert!((bus_feature(&x, 0, "inertia_pu_s") - 15.0).abs() < 1e-5);
+        assert_eq!(bus_feature(&x, 1, "inertia_pu_s"), 0.0);
+        // System features, the same at every bus: lost 0.5 of a 1.2 pu load; 15 / 1.2 s.
+        for b in 0..3 {
+            assert!((bus_feature(&x, b, "system_lost_p_share") - 0.5 / 1.2).abs() < 1e-6);
+            assert!((bus_feature(&x, b, "system_inertia_s") - 12.5).abs() < 1e-5);
+            assert_eq!(bus_feature(&x, b, "kind_machine_trip"), 1.0);
+        }
+        assert_eq!(bus_feature(&x, 1, "is_disturbance_bus"), 1.0);
+        assert_eq!(bus_feature(&x, 0, "is_disturbance_bus"), 0.0);
+        assert!((bus_feature(&x, 2, "sheddable_pu") - 0.3).abs() < 1e-6);
+        assert!((bus_feature(&x, 2, "motor_share") - 0.5).abs() < 1e-6);
+        // Distance on the ring: the Thevenin impedance between adjacent buses is
+        // 0.1 || 0.2 = 0.0667 pu (series and parallel, closed form).
+        assert!((bus_feature(&x, 0, "distance_to_disturbance_pu") - 0.2 / 3.0).abs() < 1e-5);
+        assert!((x.sheddable_pu[2] - 0.3).abs() < 1e-12);
+    }
+
+    #[test]
+    fn a_tripped_branch_is_a_removed_edge() {
+        let grid = ring();
+        let ctx = GridContext::new(&grid);
+        let dist = Disturbance {
+            kind: DisturbanceKind::BranchFault,
+            disturbance_bus: BusIdx(0),
+            fault_bus: Some(BusIdx(0)),
+            tripped_branches: vec![BranchIdx(0)],
+            tripped_machine: None,
+            tripped_wind: None,
+        };
+        let x = featurise(&ctx, &snapshot(), &dist).unwrap();
+        // Bus graph: A-B is gone, the other two edges stay.
+        assert_eq!(x.bus_adj.neighbours(0), &[2]);
+        assert_eq!(x.bus_adj.neighbours(1), &[2]);
+        assert_eq!(x.bus_adj.neighbours(2), &[0, 1]);
+        // Branch graph: the tripped branch keeps its node, without edges; the others meet at C.
+        assert!(x.branch_adj.neighbours(0).is_empty());
+        assert_eq!(x.branch_adj.neighbours(1), &[2]);
+        assert_eq!(x.branch_adj.neighbours(2), &[1]);
+        assert_eq!(branch_feature(&x, 0, "tripped"), 1.0);
+        assert_eq!(branch_feature(&x, 0, "in_service"), 0.0);
+        // Incidence: bus A keeps only A-C.
+        assert_eq!(x.bus_branches.neighbours(0), &[2]);
+        assert_eq!(bus_feature(&x, 0, "is_fault_bus"), 1.0);
+    }
+
+    #[test]
+    fn bad_snapshots_are_named() {
+        let grid = ring();
+        let ctx = GridContext::new(&grid);
+        let dist = Disturbance {
+            kind: DisturbanceKind::WindTrip,
+            disturbance_bus: BusIdx(0),
+            fault_bus: None,
+            tripped_branches: vec![],
+            tripped_machine: None,
+            tripped_wind: Some(WindIdx(0)),
+        };
+        let e = featurise(&ctx, &snapshot(), &dist).unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "disturbance field `tripped_wind`: index 0 is out of range (the grid has 0)"
+        );
+        let mut snap = snapshot();
+        snap.bus_v_pu[2] = f64::NAN;
+        let dist = Disturbance {
+            tripped_wind: None,
+            ..dist
+        };
+        let e = featurise(&ctx, &snap, &dist).unwrap_err();
+        assert!(e.to_string().contains("`bus_v_pu`, entry 2"), "{e}");
+        let mut snap = snapshot();
+        snap.load_sheddable_mw[0] = 500.0;
+        assert!(featurise(&ctx, &snap, &dist).is_err());
+        let mut snap = snapshot();
+        snap.machine_on.pop();
+        assert!(matches!(
+            featurise(&ctx, &snap, &dist),
+            Err(FeatureError::Length {
+                field: "machine_on",
+                expected: 2,
+                got: 1
+            })
+        ));
+    }
+
     #[test]
     fn csr_sorts_and_deduplicates() {
         let c = Csr::from_lists(vec![vec![2, 1, 2], vec![], vec![0]]);

@@ -485,3 +485,95 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), ModelError> {
     }
     std::fs::rename(&tmp, path).map_err(io)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn small_model() -> ModelFile {
+        let arch = Architecture::Sage {
+            hidden: 4,
+            bus_layers: 1,
+            branch_layers: 1,
+        };
+        let weights = arch
+            .parameters()
+            .into_iter()
+            .map(|(name, shape)| {
+                let n = shape.iter().product::<usize>();
+                Array {
+                    name,
+                    shape,
+                    data: (0..n).map(|k| k as f32 * 0.01).collect(),
+                }
+            })
+            .collect();
+        ModelFile::new(
+            arch,
+            Normalisation::identity(),
+            weights,
+            42,
+            "test grid".into(),
+        )
+    }
+
+    #[test]
+    fn a_model_survives_encoding() {
+        let m = small_model();
+        let back = ModelFile::decode(&m.encode(), Path::new("m.hfmodel")).unwrap();
+        assert_eq!(back, m);
+    }
+
+    #[test]
+    fn damaged_files_are_refused_with_the_file_named() {
+        let bytes = small_model().encode();
+        let p = Path::new("m.hfmodel");
+        // Every truncation, and a flipped bit in every byte: an error, never a panic.
+        for cut in 0..bytes.len() {
+            let e = ModelFile::decode(&bytes[..cut], p).unwrap_err();
+            assert!(e.to_string().starts_with("m.hfmodel: "), "{e}");
+        }
+        for k in 0..bytes.len() {
+            let mut b = bytes.clone();
+            b[k] ^= 0x10;
+            let e = ModelFile::decode(&b, p).unwrap_err();
+            assert!(matches!(e, ModelError::Damaged { .. }), "byte {k}: {e}");
+        }
+    }
+
+    #[test]
+    fn versions_grid_and_shapes_are_checked() {
+        let mut m = small_model();
+        m.format_version = 99;
+        let e = ModelFile::decode(&m.encode(), Path::new("m")).unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "m: model file layout version 99; this build reads version 1"
+        );
+        let mut m = small_model();
+        m.bus_features.swap(0, 1);
+        assert!(matches!(
+            ModelFile::decode(&m.encode(), Path::new("m")),
+            Err(ModelError::Version {
+                what: "feature set",
+                ..
+            })
+        ));
+        let m = small_model();
+        assert!(m.check_grid(42, Path::new("m")).is_ok());
+        let e = m.check_grid(7, Path::new("m")).unwrap_err();
+        assert!(
+            e.to_string().contains("trained on grid \"test grid\""),
+            "{e}"
+        );
+        let mut m = small_model();
+        m.weights[0].data.pop();
+        assert!(m.check().unwrap_err().to_string().contains("bus0.w_self"));
+        let mut m = small_model();
+        m.weights.remove(3);
+        assert!(m.check().unwrap_err().to_string().contains("is missing"));
+        let mut m = small_model();
+        m.margin.share_of_sheddable = 1.5;
+        assert!(m.check().is_err());
+    }
+}

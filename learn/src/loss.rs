@@ -96,3 +96,80 @@ impl Loss {
         self.tensor_term(d) + self.tensor_term(total)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::train::training_device;
+
+    #[test]
+    fn hand_worked_values() {
+        // One sample, two buses: predicted [1, 2], labelled [2, 1], so d = [1, -1], total 0.
+        // Averse, w = 4: buses (1 + 4 * 1 + 1) / 2 = 3; total 0.
+        let pred = vec![vec![1.0, 2.0]];
+        let target = vec![vec![2.0, 1.0]];
+        assert_eq!(
+            Loss::Averse { under_weight: 4.0 }.value(&pred, &target),
+            3.0
+        );
+        assert_eq!(
+            Loss::Averse { under_weight: 0.0 }.value(&pred, &target),
+            1.0
+        );
+        // Pinball, tau 0.9: buses (0.9 * 1 + 0.1 * 1) / 2 = 0.5; total 0.
+        assert!((Loss::Pinball { tau: 0.9 }.value(&pred, &target) - 0.5).abs() < 1e-12);
+        // Under-shedding the total by 2: predicted [0, 0], labelled [1, 1].
+        // Averse w = 4: buses (5 + 5) / 2 = 5; total 4 + 4 * 4 = 20; sum 25.
+        let pred = vec![vec![0.0, 0.0]];
+        let target = vec![vec![1.0, 1.0]];
+        assert_eq!(
+            Loss::Averse { under_weight: 4.0 }.value(&pred, &target),
+            25.0
+        );
+        // Pinball: buses 0.9, total 1.8.
+        assert!((Loss::Pinball { tau: 0.9 }.value(&pred, &target) - 2.7).abs() < 1e-12);
+    }
+
+    #[test]
+    fn tensor_loss_and_gradient_match_plain_arithmetic_and_finite_differences() {
+        let device = training_device();
+        let pred = vec![vec![0.3, 0.0, 1.2], vec![0.45, 0.7, 0.1]];
+        let target = vec![vec![0.5, 0.1, 1.0], vec![0.5, 0.2, 0.6]];
+        let flat = |v: &[Vec<f64>]| v.iter().flatten().map(|&x| x as f32).collect::<Vec<f32>>();
+        for loss in [
+            Loss::Averse { under_weight: 0.0 },
+            Loss::Averse { under_weight: 3.0 },
+            Loss::Pinball { tau: 0.8 },
+        ] {
+            let p = Tensor::<2>::from_data(TensorData::new(flat(&pred), [2, 3]), &device)
+                .require_grad();
+            let t = Tensor::<2>::from_data(TensorData::new(flat(&target), [2, 3]), &device);
+            let l = loss.tensor(p.clone(), t);
+            let value = f64::from(l.clone().into_scalar::<f32>());
+            let plain = loss.value(&pred, &target);
+            assert!((value - plain).abs() < 1e-6, "{loss:?}: {value} vs {plain}");
+            let grads = l.backward();
+            let g: Vec<f32> = p.grad(&grads).unwrap().into_data().try_into_vec().unwrap();
+            // Central differences on the plain loss (no difference is within h of a kink).
+            let h = 1e-6;
+            for k in 0..6 {
+                let (i, j) = (k / 3, k % 3);
+                let mut up = pred.clone();
+                up[i][j] += h;
+                let mut down = pred.clone();
+                down[i][j] -= h;
+                let fd = (loss.value(&up, &target) - loss.value(&down, &target)) / (2.0 * h);
+                assert!(
+                    (f64::from(g[k]) - fd).abs() < 1e-4,
+                    "{loss:?} d/dpred[{i}][{j}]: autodiff {} vs finite difference {fd}",
+                    g[k]
+                );
+                // And by hand: per-bus term / (buses x samples) + total term / samples.
+                let d_bus = target[i][j] - pred[i][j];
+                let d_total: f64 = (0..3).map(|c| target[i][c] - pred[i][c]).sum();
+                let by_hand = loss.derivative(d_bus) / 6.0 + loss.derivative(d_total) / 2.0;
+                assert!((by_hand - fd).abs() < 1e-6, "{loss:?}: {by_hand} vs {fd}");
+            }
+        }
+    }
+}

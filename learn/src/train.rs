@@ -257,8 +257,10 @@ pub struct Trained {
     pub model: ModelFile,
     /// Per epoch: training and validation loss.
     pub history: Vec<(f64, f64)>,
-    /// Seconds per epoch, measured.
+    /// Seconds per epoch, measured (training steps and validation).
     pub epoch_seconds: Vec<f64>,
+    /// Of which in training steps (batches, forward, backward, Adam).
+    pub step_seconds: Vec<f64>,
 }
 
 /// A model file holding these parameters.
@@ -301,10 +303,17 @@ fn validation_loss(
     Ok(loss.value(&pred, &target))
 }
 
+/// What a checkpoint must agree on to be resumed: every setting that shapes the epochs
+/// already run (not the number of epochs, the patience or the margin target, which only decide
+/// when to stop and what to do after), and the dataset.
 fn run_key(config: &TrainConfig, data: &Dataset) -> String {
+    let shaping: Vec<(String, String)> = config
+        .settings()
+        .into_iter()
+        .filter(|(k, _)| !matches!(k.as_str(), "epochs" | "patience" | "target_under_rate"))
+        .collect();
     let text = format!(
-        "{:?}|{}|{}|{}",
-        config.settings(),
+        "{shaping:?}|{}|{}|{}",
         data.manifest.study_hash,
         data.manifest.samples,
         data.examples.len()
@@ -401,6 +410,7 @@ pub fn train(
     };
     let device = training_device();
     let mut epoch_seconds = Vec::new();
+    let mut step_seconds = Vec::new();
     while state.epochs_done < config.epochs
         && state.epochs_done.saturating_sub(state.best_epoch) < config.patience.max(1)
     {
@@ -442,6 +452,7 @@ pub fn train(
             sum += value * chunk.len() as f64;
             progress.batch(value);
         }
+        step_seconds.push(started.elapsed().as_secs_f64());
         let train_loss = sum / order.len() as f64;
         let current = model_file(arch, &state.normalisation, &state.params, data);
         let val = validation_loss(&config.loss, &current, &val_set)?;
@@ -490,6 +501,7 @@ pub fn train(
         model,
         history: state.history,
         epoch_seconds,
+        step_seconds,
     })
 }
 

@@ -308,6 +308,16 @@ pub fn merge(inputs: &[PathBuf], out: &Path) -> Result<MergeReport, DatasetError
     let grid_src = first.join("grid.toml");
     let grid = fs::read(&grid_src).map_err(io_error(&grid_src))?;
     write_atomic(&out.join("grid.toml"), &grid)?;
+    // The study copy (absent in folders built before it was kept; the hash check in
+    // `Generator::for_dataset` guards its use).
+    if let Some(study) = inputs
+        .iter()
+        .map(|d| d.join(crate::generate::STUDY_FILE))
+        .find(|p| p.is_file())
+    {
+        let text = fs::read(&study).map_err(io_error(&study))?;
+        write_atomic(&out.join(crate::generate::STUDY_FILE), &text)?;
+    }
     let complete: BTreeSet<u32> = sources.keys().copied().collect();
     let manifest = Manifest {
         complete: complete.iter().copied().collect(),

@@ -1,0 +1,413 @@
+//! Training checks on a dataset labelled here from the demo study (fictional demo grid):
+//! the network's gradients against finite differences, the burn forward pass against the
+//! plain-Rust one of `holdfast-infer`, learning sanity, determinism and resume.
+//!
+//! Training code is about 25 times slower unoptimised: run these with `--release` (as CI does).
+
+#![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test code, where a panic is the failure report
+
+use std::path::PathBuf;
+use std::sync::OnceLock;
+
+use holdfast_infer::forward::Network;
+use holdfast_infer::model::Architecture;
+use holdfast_learn::data::{Dataset, Example, Split, SplitRule, read_dataset};
+use holdfast_learn::evaluate::{Metrics, evaluate};
+use holdfast_learn::loss::Loss;
+use holdfast_learn::net::{
+    build_batch, fit_normalisation, forward, init_parameters, parameter_tensors,
+};
+use holdfast_learn::train::{
+    Silent, TrainConfig, TrainRun, cpu_device, model_file, train, training_device,
+};
+use holdfast_sim::dataset::SampleBody;
+use holdfast_sim::generate::{BuildOptions, Generator, Quiet, build};
+use holdfast_sim::report::for_each_sample;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+const SAMPLES: u64 = 700;
+
+fn split() -> SplitRule {
+    SplitRule {
+        seed: 7,
+        shares: [0.15, 0.15, 0.15],
+    }
+}
+
+/// 700 labelled samples of the demo study, built once per test run (about 20 s on two cores).
+fn dataset_dir() -> &'static PathBuf {
+    static DIR: OnceLock<PathBuf> = OnceLock::new();
+    DIR.get_or_init(|| {
+        let root = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("..");
+        let dir = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("learn-demo-700");
+        let _ = std::fs::remove_dir_all(&dir);
+        let generator = Generator::open(&root.join("scenarios/quillmoor-study.toml")).unwrap();
+        let opts = BuildOptions {
+            samples: SAMPLES,
+            out: dir.clone(),
+            jobs: std::thread::available_parallelism().map_or(1, |n| n.get()),
+            part: (1, 1),
+            resume: false,
+        };
+        build(&generator, &opts, &Quiet).unwrap();
+        dir
+    })
+}
+
+fn dataset() -> Dataset {
+    read_dataset(dataset_dir(), None, split()).unwrap()
+}
+
+fn config(architecture: Architecture, loss: Loss, epochs: usize) -> TrainConfig {
+    TrainConfig {
+        architecture,
+        loss,
+        epochs,
+        batch: 64,
+        learning_rate: 3e-3,
+        patience: 10,
+        seed: 3,
+        neighbours: Some(4),
+        split: split(),
+        target_under_rate: 0.1,
+    }
+}
+
+fn sage() -> Architecture {
+    Architecture::Sage {
+        hidden: 32,
+        bus_layers: 2,
+        branch_layers: 1,
+    }
+}
+
+fn mlp(data: &Dataset) -> Architecture {
+    Architecture::Mlp {
+        hidden: 64,
+        layers: 2,
+        n_bus: data.grid().n_buses(),
+        n_branch: data.grid().branches.len(),
+    }
+}
+
+#[test]
+fn per_bus_sheddable_load_adds_up_to_the_labels_total() {
+    // The features' shed-able load (the bound of every prediction) is the labeller's.
+    let data = dataset();
+    let mut labelled = std::collections::HashMap::new();
+    for_each_sample(dataset_dir(), |s| {
+        if let SampleBody::Labelled(l) = &s.body {
+            labelled.insert(s.index, l.label.sheddable_mw);
+        }
+    })
+    .unwrap();
+    let s = data.grid().s_base_mva;
+    for e in &data.examples {
+        let sum: f64 = e.input.sheddable_pu.iter().sum::<f64>() * s;
+        assert!(
+            (sum - labelled[&e.index]).abs() < 1e-6,
+            "sample {}",
+            e.index
+        );
+        // And no bus's label exceeds its bound.
+        for (t, b) in e.target_pu.iter().zip(&e.input.sheddable_pu) {
+            assert!(*t <= b + 1e-9, "sample {}", e.index);
+        }
+    }
+}
+
+#[test]
+fn burn_and_plain_rust_forward_passes_agree_on_100_samples() {
+    let data = dataset();
+    let examples: Vec<&Example> = data.examples.iter().take(100).collect();
+    assert_eq!(examples.len(), 100);
+    let norm = fit_normalisation(&examples);
+    let device = cpu_device();
+    for arch in [
+        sage(),
+        Architecture::Sage {
+            hidden: 16,
+            bus_layers: 3,
+            branch_layers: 0,
+        },
+        mlp(&data),
+    ] {
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        let params = init_parameters(&arch, &mut rng);
+        let batch = build_batch(&examples, &arch, &norm, None, &mut rng, &device);
+        let tensors = parameter_tensors(&params, &device, false);
+        let burn_pred: Vec<f32> = forward(&arch, &tensors, &batch)
+            .into_data()
+            .try_into_vec()
+            .unwrap();
+        let net = Network::new(&model_file(&arch, &norm, &params, &data)).unwrap();
+        let n = data.grid().n_buses();
+        let mut worst = 0.0f64;
+        for (k, e) in examples.iter().enumerate() {
+            let plain = net.predict(&e.input).unwrap();
+            for b in 0..n {
+                worst = worst.max((plain[b] - f64::from(burn_pred[k * n + b])).abs());
+            }
+        }
+        println!("{}: largest difference {worst:.2e} pu", arch.name());
+        assert!(worst < 1e-4, "{arch:?}: {worst}");
+    }
+}
+
+#[test]
+fn network_gradients_match_finite_differences() {
+    // Autodiff through the whole GraphSAGE network (both towers, full neighbourhoods) against
+    // central differences of the loss, on a few weights of each kind.
+    let data = dataset();
+    let examples: Vec<&Example> = data
+        .examples
+        .iter()
+        .filter(|e| e.needs_shed())
+        .take(16)
+        .collect();
+    let norm = fit_normalisation(&examples);
+    let arch = sage();
+    let loss = Loss::Averse { under_weight: 2.0 };
+    let device = training_device();
+    let mut rng = ChaCha8Rng::seed_from_u64(5);
+    let params = init_parameters(&arch, &mut rng);
+    let batch = build_batch(&examples, &arch, &norm, None, &mut rng, &device);
+    let tensors = parameter_tensors(&params, &device, true);
+    let l = loss.tensor(forward(&arch, &tensors, &batch), batch.target.clone());
+    let grads = l.backward();
+    // The plain-Rust forward in f32 sets the difference step: 1e-2 on weights of order 0.1-1.
+    let net_loss = |p: &[holdfast_infer::model::Array]| {
+        let net = Network::new(&model_file(&arch, &norm, p, &data)).unwrap();
+        let pred: Vec<Vec<f64>> = examples
+            .iter()
+            .map(|e| net.predict(&e.input).unwrap())
+            .collect();
+        let target: Vec<Vec<f64>> = examples.iter().map(|e| e.target_pu.clone()).collect();
+        loss.value(&pred, &target)
+    };
+    let h = 1e-2f32;
+    let mut checked = 0;
+    for (k, a) in params.iter().enumerate() {
+        let g: Vec<f32> = tensors[k]
+            .grad(&grads)
+            .unwrap()
+            .into_data()
+            .try_into_vec()
+            .unwrap();
+        // The largest-gradient entry of each array: well above the f32 noise floor.
+        let (i, gi) = g
+            .iter()
+            .enumerate()
+            .max_by(|a, b| a.1.abs().total_cmp(&b.1.abs()))
+            .map(|(i, g)| (i, *g))
+            .unwrap();
+        if gi.abs() < 1e-3 {
+            continue;
+        }
+        let mut up = params.clone();
+        up[k].data[i] += h;
+        let mut down = params.clone();
+        down[k].data[i] -= h;
+        let fd = (net_loss(&up) - net_loss(&down)) / (2.0 * f64::from(h));
+        let rel = (f64::from(gi) - fd).abs() / fd.abs().max(1e-3);
+        println!(
+            "{}[{i}]: autodiff {gi:.5}, finite difference {fd:.5}, relative {rel:.1e}",
+            a.name
+        );
+        assert!(
+            rel < 0.05,
+            "{}[{i}]: autodiff {gi} vs finite difference {fd}",
+            a.name
+        );
+        checked += 1;
+    }
+    assert!(checked >= 8, "only {checked} arrays had a usable gradient");
+}
+
+fn test_metrics(data: &Dataset, trained: &holdfast_learn::train::Trained) -> Metrics {
+    let test = data.split(Split::Test);
+    evaluate(&trained.model, data, &test, 0, false, 1, &|| {})
+        .unwrap()
+        .overall()
+}
+
+#[test]
+fn training_beats_the_mean_and_the_averse_loss_under_sheds_less() {
+    let data = dataset();
+    let neutral = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 0.0 }, 40),
+        &TrainRun::default(),
+        &Silent,
+    )
+    .unwrap();
+    let averse = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 4.0 }, 40),
+        &TrainRun::default(),
+        &Silent,
+    )
+    .unwrap();
+    // The baseline: predict the mean labelled total of the training samples that need shed.
+    let s = data.grid().s_base_mva;
+    let train_shed: Vec<f64> = data
+        .split(Split::Train)
+        .iter()
+        .filter(|e| e.needs_shed())
+        .map(|e| e.total_pu * s)
+        .collect();
+    let mean = train_shed.iter().sum::<f64>() / train_shed.len() as f64;
+    let val: Vec<&Example> = data
+        .split(Split::Validation)
+        .into_iter()
+        .filter(|e| e.needs_shed())
+        .collect();
+    let mean_mape = 100.0
+        * val
+            .iter()
+            .map(|e| (mean - e.total_pu * s).abs() / (e.total_pu * s))
+            .sum::<f64>()
+        / val.len() as f64;
+    let val_metrics = |t: &holdfast_learn::train::Trained| {
+        evaluate(
+            &t.model,
+            &data,
+            &data.split(Split::Validation),
+            0,
+            false,
+            1,
+            &|| {},
+        )
+        .unwrap()
+        .overall()
+    };
+    let (mn, ma) = (val_metrics(&neutral), val_metrics(&averse));
+    let (tn, ta) = (test_metrics(&data, &neutral), test_metrics(&data, &averse));
+    println!(
+        "validation MAPE: mean predictor {mean_mape:.1} %, neutral {:.1} %, averse {:.1} % ({} cases)",
+        mn.mape_pct,
+        ma.mape_pct,
+        val.len()
+    );
+    println!(
+        "under-shed before the margin, validation: neutral {:.1} %, averse {:.1} %; test: neutral {:.1} %, averse {:.1} %",
+        mn.under_raw_pct, ma.under_raw_pct, tn.under_raw_pct, ta.under_raw_pct
+    );
+    println!(
+        "test under-shed with the margin (target 10 %): neutral {:.1} %, averse {:.1} %",
+        tn.under_pct, ta.under_pct
+    );
+    assert!(
+        mn.mape_pct < 0.6 * mean_mape,
+        "neutral {} vs mean {mean_mape}",
+        mn.mape_pct
+    );
+    assert!(
+        ma.mape_pct < 0.6 * mean_mape,
+        "averse {} vs mean {mean_mape}",
+        ma.mape_pct
+    );
+    assert!(
+        ma.under_raw_pct < mn.under_raw_pct,
+        "averse {} vs neutral {}",
+        ma.under_raw_pct,
+        mn.under_raw_pct
+    );
+}
+
+#[test]
+fn training_is_deterministic_and_a_resumed_run_repeats_an_uninterrupted_one() {
+    let data = dataset();
+    let cfg = |epochs| config(mlp(&data), Loss::Pinball { tau: 0.8 }, epochs);
+    let whole = train(&data, &cfg(4), &TrainRun::default(), &Silent).unwrap();
+    let again = train(&data, &cfg(4), &TrainRun::default(), &Silent).unwrap();
+    assert_eq!(whole.model.encode(), again.model.encode());
+
+    let ckpt = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("resume-test.checkpoint");
+    let _ = std::fs::remove_file(&ckpt);
+    let run = TrainRun {
+        checkpoint: Some(ckpt.clone()),
+        resume: false,
+        init_from: None,
+    };
+    // Two epochs, as if the run had stopped there; then the same command with --resume.
+    train(&data, &cfg(2), &run, &Silent).unwrap();
+    let refused = train(&data, &cfg(4), &run, &Silent).err().unwrap();
+    assert!(refused.to_string().contains("--resume"), "{refused}");
+    let resumed = train(
+        &data,
+        &cfg(4),
+        &TrainRun {
+            resume: true,
+            ..run.clone()
+        },
+        &Silent,
+    )
+    .unwrap();
+    assert_eq!(resumed.history, whole.history);
+    assert_eq!(resumed.model.encode(), whole.model.encode());
+    // A checkpoint of other settings is refused.
+    let other = config(mlp(&data), Loss::Pinball { tau: 0.7 }, 4);
+    let e = train(
+        &data,
+        &other,
+        &TrainRun {
+            resume: true,
+            ..run
+        },
+        &Silent,
+    )
+    .err()
+    .unwrap();
+    assert!(e.to_string().contains("other settings"), "{e}");
+}
+
+#[test]
+fn fine_tuning_starts_from_the_given_weights() {
+    let data = dataset();
+    let first = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 4.0 }, 3),
+        &TrainRun::default(),
+        &Silent,
+    )
+    .unwrap();
+    let tuned = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 4.0 }, 1),
+        &TrainRun {
+            init_from: Some(first.model.clone()),
+            ..TrainRun::default()
+        },
+        &Silent,
+    )
+    .unwrap();
+    // One more epoch from trained weights starts from their validation loss, not a fresh one's.
+    let fresh = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 4.0 }, 1),
+        &TrainRun::default(),
+        &Silent,
+    )
+    .unwrap();
+    println!(
+        "validation loss: fresh 1 epoch {:.4}, trained 3 epochs {:.4}, fine-tuned +1 {:.4}",
+        fresh.history[0].1, first.model.training.validation_loss, tuned.history[0].1
+    );
+    assert!(tuned.history[0].1 < fresh.history[0].1);
+    assert_eq!(tuned.model.normalisation, first.model.normalisation);
+    let wrong = config(mlp(&data), Loss::Averse { under_weight: 4.0 }, 1);
+    assert!(
+        train(
+            &data,
+            &wrong,
+            &TrainRun {
+                init_from: Some(first.model),
+                ..TrainRun::default()
+            },
+            &Silent
+        )
+        .is_err()
+    );
+}
