@@ -469,11 +469,7 @@ pub(crate) fn evaluate_command(args: &EvaluateArgs, out: &mut impl Write) -> Res
         SplitChoice::Test => data.split(Split::Test),
         SplitChoice::All => data.examples.iter().collect(),
     };
-    let unsavable = data
-        .unsavable
-        .iter()
-        .filter(|(i, _)| split == SplitChoice::All || rule.of(*i) == Split::Test)
-        .count();
+    let unsavable = data.unsavable_in(&rule, (split == SplitChoice::Test).then_some(Split::Test));
     let bar = eval_bar(examples.len(), args.quiet || args.no_simulate)?;
     let eval = evaluate(
         &model,
@@ -539,11 +535,7 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     }
     let test = data.split(Split::Test);
-    let unsavable = data
-        .unsavable
-        .iter()
-        .filter(|(i, _)| o.split_rule().of(*i) == Split::Test)
-        .count();
+    let unsavable = data.unsavable_in(&o.split_rule(), Some(Split::Test));
     let mut rows = Vec::new();
     for (model, loss) in [
         (ModelKind::Sage, LossKind::Neutral),

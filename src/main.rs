@@ -74,7 +74,8 @@ enum Command {
     #[command(verbatim_doc_comment)]
     Evaluate(learn::EvaluateArgs),
     /// Train and evaluate GraphSAGE and the MLP baseline, each with the neutral and the averse
-    /// loss, on one dataset; print one table.
+    /// loss, on one dataset; print one table (--model and --loss are ignored here; every other
+    /// training setting applies to all four).
     ///
     /// Example: holdfast compare data/quillmoor --epochs 30
     #[command(verbatim_doc_comment)]

@@ -15,7 +15,7 @@
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-use holdfast_core::format::fnv1a64;
+use holdfast_core::format::{seal, unseal};
 use serde::{Deserialize, Serialize};
 
 use crate::features::{BRANCH_FEATURES, BUS_FEATURES, FEATURE_SET_VERSION};
@@ -372,13 +372,7 @@ impl ModelFile {
         let cfg = bincode::config::standard();
         // Encoding plain data into a Vec cannot fail.
         let body = bincode::serde::encode_to_vec(self, cfg).unwrap_or_default();
-        let mut out = Vec::with_capacity(body.len() + 24);
-        out.extend_from_slice(MAGIC);
-        out.extend_from_slice(&(body.len() as u64).to_le_bytes());
-        out.extend_from_slice(&body);
-        let sum = fnv1a64(&out);
-        out.extend_from_slice(&sum.to_le_bytes());
-        out
+        seal(MAGIC, &body)
     }
 
     /// Reads a model from bytes (`path` names it in errors): magic, length, checksum, layout
@@ -388,32 +382,11 @@ impl ModelFile {
             path: path.to_path_buf(),
             problem,
         };
-        if bytes.len() < 24 || &bytes[..8] != MAGIC {
-            return Err(damaged(
-                "not a Holdfast model file (no HFMODEL1 header)".into(),
-            ));
-        }
-        let mut len = [0u8; 8];
-        len.copy_from_slice(&bytes[8..16]);
-        let len = u64::from_le_bytes(len);
-        let expected = 16u64.saturating_add(len).saturating_add(8);
-        if bytes.len() as u64 != expected {
-            return Err(damaged(format!(
-                "{} bytes, the header announces {expected}: the file is truncated or has extra bytes",
-                bytes.len()
-            )));
-        }
-        let (content, sum) = bytes.split_at(bytes.len() - 8);
-        let mut s = [0u8; 8];
-        s.copy_from_slice(sum);
-        if fnv1a64(content) != u64::from_le_bytes(s) {
-            return Err(damaged("checksum mismatch: the file is damaged".into()));
-        }
+        let body = unseal(MAGIC, bytes).map_err(damaged)?;
         let cfg = bincode::config::standard().with_limit::<{ 1 << 30 }>();
-        let (model, used): (ModelFile, usize) =
-            bincode::serde::decode_from_slice(&content[16..], cfg)
-                .map_err(|e| damaged(format!("cannot decode the model: {e}")))?;
-        if used != content.len() - 16 {
+        let (model, used): (ModelFile, usize) = bincode::serde::decode_from_slice(body, cfg)
+            .map_err(|e| damaged(format!("cannot decode the model: {e}")))?;
+        if used != body.len() {
             return Err(damaged("trailing bytes after the model".into()));
         }
         if model.format_version != MODEL_FORMAT_VERSION {

@@ -254,6 +254,14 @@ impl Dataset {
         &self.generator.grid
     }
 
+    /// Unsavable samples in one split (all of them for `None`).
+    pub fn unsavable_in(&self, rule: &SplitRule, split: Option<Split>) -> usize {
+        self.unsavable
+            .iter()
+            .filter(|(i, _)| split.is_none_or(|s| rule.of(*i) == s))
+            .count()
+    }
+
     /// The examples of one split.
     pub fn split(&self, which: Split) -> Vec<&Example> {
         self.examples.iter().filter(|e| e.split == which).collect()

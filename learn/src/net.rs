@@ -161,55 +161,29 @@ pub fn build_batch(
         shed.extend(e.input.sheddable_pu.iter().map(|&x| x as f32));
         target.extend(e.target_pu.iter().map(|&x| x as f32));
     }
-    let mut a_bus = Vec::with_capacity(bus_layers);
-    for _ in 0..bus_layers {
-        let mut a = vec![0.0f32; b * n * n];
-        for (k, e) in examples.iter().enumerate() {
-            mean_matrix(
-                &e.input.bus_adj,
-                keep,
-                rng,
-                &mut a[k * n * n..(k + 1) * n * n],
-                n,
-            );
-        }
-        a_bus.push(Tensor::<3>::from_data(
-            TensorData::new(a, [b, n, n]),
-            device,
-        ));
-    }
-    let mut a_branch = Vec::with_capacity(branch_layers);
-    for _ in 0..branch_layers {
-        let mut a = vec![0.0f32; b * m * m];
-        for (k, e) in examples.iter().enumerate() {
-            mean_matrix(
-                &e.input.branch_adj,
-                keep,
-                rng,
-                &mut a[k * m * m..(k + 1) * m * m],
-                m,
-            );
-        }
-        a_branch.push(Tensor::<3>::from_data(
-            TensorData::new(a, [b, m, m]),
-            device,
-        ));
-    }
-    let incidence = if branch_layers > 0 {
-        let mut a = vec![0.0f32; b * n * m];
-        for (k, e) in examples.iter().enumerate() {
-            mean_matrix(
-                &e.input.bus_branches,
-                None,
-                rng,
-                &mut a[k * n * m..(k + 1) * n * m],
-                m,
-            );
-        }
-        Tensor::<3>::from_data(TensorData::new(a, [b, n, m]), device)
-    } else {
-        Tensor::<3>::zeros([1, 1, 1], device)
+    // One matrix per layer and graph, `rows x cols` per sample, neighbours drawn afresh for each.
+    let mut matrices = |count: usize,
+                        rows: usize,
+                        cols: usize,
+                        keep: Option<usize>,
+                        lists: &dyn Fn(&Example) -> &Csr| {
+        (0..count)
+            .map(|_| {
+                let mut a = vec![0.0f32; b * rows * cols];
+                for (e, block) in examples.iter().zip(a.chunks_mut(rows * cols)) {
+                    mean_matrix(lists(e), keep, rng, block, cols);
+                }
+                Tensor::<3>::from_data(TensorData::new(a, [b, rows, cols]), device)
+            })
+            .collect::<Vec<_>>()
     };
+    let a_bus = matrices(bus_layers, n, n, keep, &|e| &e.input.bus_adj);
+    let a_branch = matrices(branch_layers, m, m, keep, &|e| &e.input.branch_adj);
+    let incidence = matrices(usize::from(branch_layers > 0), n, m, None, &|e| {
+        &e.input.bus_branches
+    })
+    .pop()
+    .unwrap_or_else(|| Tensor::<3>::zeros([1, 1, 1], device));
     Batch {
         x_bus: Tensor::from_data(TensorData::new(xb, [b, n, N_BUS_FEATURES]), device),
         x_branch: Tensor::from_data(TensorData::new(xe, [b, m, N_BRANCH_FEATURES]), device),

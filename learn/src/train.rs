@@ -5,6 +5,7 @@
 use std::path::{Path, PathBuf};
 
 use burn::prelude::*;
+use holdfast_core::format::{seal, unseal};
 use holdfast_infer::forward::Network;
 use holdfast_infer::model::{
     Architecture, Array, Margin, ModelError, ModelFile, Normalisation, TrainingInfo, write_atomic,
@@ -191,31 +192,18 @@ impl Checkpoint {
     fn write(&self, path: &Path) -> Result<(), TrainError> {
         let body =
             bincode::serde::encode_to_vec(self, bincode::config::standard()).unwrap_or_default();
-        let mut out = CHECKPOINT_MAGIC.to_vec();
-        out.extend_from_slice(&body);
-        out.extend_from_slice(&fnv1a64(&out).to_le_bytes());
-        Ok(write_atomic(path, &out)?)
+        Ok(write_atomic(path, &seal(CHECKPOINT_MAGIC, &body))?)
     }
 
     fn read(path: &Path) -> Result<Checkpoint, TrainError> {
         let bad = |message: String| TrainError::Checkpoint {
             path: path.to_path_buf(),
-            message,
+            message: format!("{message}; delete it to start afresh"),
         };
         let bytes = std::fs::read(path).map_err(|e| bad(e.to_string()))?;
-        if bytes.len() < 16 || &bytes[..8] != CHECKPOINT_MAGIC {
-            return Err(bad("not a Holdfast checkpoint".into()));
-        }
-        let (content, sum) = bytes.split_at(bytes.len() - 8);
-        let mut s = [0u8; 8];
-        s.copy_from_slice(sum);
-        if fnv1a64(content) != u64::from_le_bytes(s) {
-            return Err(bad(
-                "checksum mismatch: the checkpoint is damaged; delete it to start afresh".into(),
-            ));
-        }
+        let body = unseal(CHECKPOINT_MAGIC, &bytes).map_err(bad)?;
         let cfg = bincode::config::standard().with_limit::<{ 1 << 30 }>();
-        bincode::serde::decode_from_slice(&content[8..], cfg)
+        bincode::serde::decode_from_slice(body, cfg)
             .map(|(c, _)| c)
             .map_err(|e| bad(format!("cannot decode: {e}")))
     }

@@ -23,7 +23,6 @@ use serde::{Deserialize, Serialize};
 use crate::contingency::Contingency;
 use crate::label::Label;
 use crate::sampling::{Draw, OperatingPoint, Rejection};
-use crate::study::fnv1a64;
 
 /// Shard layout version written by this build.
 pub const SHARD_FORMAT_VERSION: u32 = 1;
@@ -240,13 +239,7 @@ pub fn encode_shard(header: &ShardHeader, samples: &[Sample]) -> Vec<u8> {
     let cfg = bincode::config::standard();
     // Encoding plain data into a Vec cannot fail.
     let body = bincode::serde::encode_to_vec((header, samples), cfg).unwrap_or_default();
-    let mut out = Vec::with_capacity(body.len() + 24);
-    out.extend_from_slice(MAGIC);
-    out.extend_from_slice(&(body.len() as u64).to_le_bytes());
-    out.extend_from_slice(&body);
-    let sum = fnv1a64(&out);
-    out.extend_from_slice(&sum.to_le_bytes());
-    out
+    holdfast_core::format::seal(MAGIC, &body)
 }
 
 /// Decodes a shard, checking its layout and checksum; `path` names it in errors.
@@ -258,34 +251,10 @@ pub fn decode_shard(bytes: &[u8], path: &Path) -> Result<(ShardHeader, Vec<Sampl
               shards again"
             .to_string(),
     };
-    if bytes.len() < 24 || &bytes[..8] != MAGIC {
-        return Err(damaged(format!(
-            "not a shard file of this format (expected it to start with {:?}; {} bytes)",
-            String::from_utf8_lossy(MAGIC),
-            bytes.len()
-        )));
-    }
-    let mut len = [0u8; 8];
-    len.copy_from_slice(&bytes[8..16]);
-    let body_len = u64::from_le_bytes(len) as usize;
-    if bytes.len() != body_len.saturating_add(24) {
-        return Err(damaged(format!(
-            "truncated or padded: {} bytes, the header announces {}",
-            bytes.len(),
-            body_len.saturating_add(24)
-        )));
-    }
-    let (content, tail) = bytes.split_at(16 + body_len);
-    let mut sum = [0u8; 8];
-    sum.copy_from_slice(tail);
-    if fnv1a64(content) != u64::from_le_bytes(sum) {
-        return Err(damaged(
-            "checksum mismatch: the file is corrupted".to_string(),
-        ));
-    }
+    let body = holdfast_core::format::unseal(MAGIC, bytes).map_err(damaged)?;
     let cfg = bincode::config::standard();
     let ((header, samples), _): ((ShardHeader, Vec<Sample>), usize) =
-        bincode::serde::decode_from_slice(&content[16..], cfg)
+        bincode::serde::decode_from_slice(body, cfg)
             .map_err(|e| damaged(format!("cannot decode: {e}")))?;
     if header.format_version != SHARD_FORMAT_VERSION {
         return Err(DatasetError::Shard {

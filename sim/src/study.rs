@@ -916,11 +916,4 @@ mod tests {
         let plain = parse_study(MINIMAL, Path::new("s.toml")).unwrap();
         assert_eq!(plain.sheddable_fraction(&load), 0.5);
     }
-
-    #[test]
-    fn fnv_matches_its_published_test_vectors() {
-        // FNV-1a 64 reference values (draft-eastlake-fnv, test vectors: "" and "a").
-        assert_eq!(fnv1a64(b""), 0xcbf2_9ce4_8422_2325);
-        assert_eq!(fnv1a64(b"a"), 0xaf63_dc4c_8601_ec8c);
-    }
 }

@@ -75,6 +75,47 @@ pub fn fnv1a64(bytes: &[u8]) -> u64 {
     h
 }
 
+/// Checksummed framing of Holdfast's binary files (dataset shards, model files, training
+/// checkpoints): an 8-byte magic, the body's length as a little-endian `u64`, the body, then
+/// FNV-1a 64 of everything before it, little-endian.
+pub fn seal(magic: &[u8; 8], body: &[u8]) -> Vec<u8> {
+    let mut out = Vec::with_capacity(body.len() + 24);
+    out.extend_from_slice(magic);
+    out.extend_from_slice(&(body.len() as u64).to_le_bytes());
+    out.extend_from_slice(body);
+    let sum = fnv1a64(&out);
+    out.extend_from_slice(&sum.to_le_bytes());
+    out
+}
+
+/// The body of bytes written by [`seal`] with this magic, or what is wrong with them (for the
+/// caller to put in its error, with the file's name).
+pub fn unseal<'a>(magic: &[u8; 8], bytes: &'a [u8]) -> Result<&'a [u8], String> {
+    if bytes.len() < 24 || &bytes[..8] != magic {
+        return Err(format!(
+            "not a file of this kind (expected it to start with {:?}; {} bytes)",
+            String::from_utf8_lossy(magic),
+            bytes.len()
+        ));
+    }
+    let mut len = [0u8; 8];
+    len.copy_from_slice(&bytes[8..16]);
+    let announced = u64::from_le_bytes(len).saturating_add(24);
+    if bytes.len() as u64 != announced {
+        return Err(format!(
+            "truncated or padded: {} bytes, the header announces {announced}",
+            bytes.len()
+        ));
+    }
+    let (content, tail) = bytes.split_at(bytes.len() - 8);
+    let mut sum = [0u8; 8];
+    sum.copy_from_slice(tail);
+    if fnv1a64(content) != u64::from_le_bytes(sum) {
+        return Err("checksum mismatch: the file is corrupted".to_string());
+    }
+    Ok(&content[16..])
+}
+
 /// The grid's fingerprint: FNV-1a 64 of its canonical grid file, so a re-formatted but equal
 /// grid file keeps it. Datasets and model files carry it to tell which grid they belong to.
 pub fn grid_fingerprint(grid: &Grid) -> Result<u64, Error> {
@@ -103,4 +144,38 @@ pub fn line_col(text: &str, offset: usize) -> (usize, usize) {
     let line = before.bytes().filter(|&b| b == b'\n').count() + 1;
     let column = before.rsplit('\n').next().map_or(0, |s| s.chars().count()) + 1;
     (line, column)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn fnv_matches_its_published_test_vectors() {
+        // FNV-1a 64 reference values (draft-eastlake-fnv, test vectors: "" and "a").
+        assert_eq!(fnv1a64(b""), 0xcbf2_9ce4_8422_2325);
+        assert_eq!(fnv1a64(b"a"), 0xaf63_dc4c_8601_ec8c);
+    }
+
+    #[test]
+    fn sealed_bytes_open_only_intact() {
+        let sealed = seal(b"TESTMAG1", b"payload");
+        assert_eq!(sealed.len(), 7 + 24);
+        assert_eq!(unseal(b"TESTMAG1", &sealed).unwrap(), b"payload");
+        assert!(
+            unseal(b"OTHERMAG", &sealed)
+                .unwrap_err()
+                .starts_with("not a file of this kind")
+        );
+        assert!(
+            unseal(b"TESTMAG1", &sealed[..30])
+                .unwrap_err()
+                .starts_with("truncated")
+        );
+        for k in 0..sealed.len() {
+            let mut b = sealed.clone();
+            b[k] ^= 0x01;
+            assert!(unseal(b"TESTMAG1", &b).is_err(), "byte {k}");
+        }
+    }
 }
