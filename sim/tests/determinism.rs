@@ -32,10 +32,10 @@ fn threads_and_parts_give_byte_identical_datasets() {
     let two_threads = base.join("jobs2");
     build_into(&generator, &two_threads, 2, (1, 1));
     let reference = common::folder_bytes(&one_thread);
-    // 24 samples in shards of 5: five shards, manifest and grid.
+    // 24 samples in shards of 5: five shards, manifest, grid and the study copy.
     assert_eq!(
         reference.len(),
-        7,
+        8,
         "{:?}",
         reference.iter().map(|f| &f.0).collect::<Vec<_>>()
     );
