@@ -426,11 +426,20 @@ fn legend(out: &mut impl Write) -> Result<()> {
     Ok(())
 }
 
-fn eval_bar(cases: usize, quiet: bool) -> Result<ProgressBar> {
-    let bar = if quiet {
+/// Evaluates with a progress bar over the re-simulated cases (none when not simulating).
+fn evaluate_with_bar(
+    model: &ModelFile,
+    data: &Dataset,
+    examples: &[&holdfast_learn::data::Example],
+    unsavable: usize,
+    simulate: bool,
+    jobs: usize,
+    quiet: bool,
+) -> Result<Evaluation> {
+    let bar = if quiet || !simulate {
         ProgressBar::hidden()
     } else {
-        ProgressBar::new(cases as u64)
+        ProgressBar::new(examples.len() as u64)
     };
     bar.set_style(
         ProgressStyle::with_template(
@@ -440,7 +449,11 @@ fn eval_bar(cases: usize, quiet: bool) -> Result<ProgressBar> {
         .progress_chars("=> "),
     );
     bar.enable_steady_tick(Duration::from_millis(500));
-    Ok(bar)
+    let eval = evaluate(model, data, examples, unsavable, simulate, jobs, &|| {
+        bar.inc(1)
+    })?;
+    bar.finish_and_clear();
+    Ok(eval)
 }
 
 pub(crate) fn evaluate_command(args: &EvaluateArgs, out: &mut impl Write) -> Result<()> {
@@ -470,17 +483,15 @@ pub(crate) fn evaluate_command(args: &EvaluateArgs, out: &mut impl Write) -> Res
         SplitChoice::All => data.examples.iter().collect(),
     };
     let unsavable = data.unsavable_in(&rule, (split == SplitChoice::Test).then_some(Split::Test));
-    let bar = eval_bar(examples.len(), args.quiet || args.no_simulate)?;
-    let eval = evaluate(
+    let eval = evaluate_with_bar(
         &model,
         &data,
         &examples,
         unsavable,
         !args.no_simulate,
         args.jobs,
-        &|| bar.inc(1),
+        args.quiet,
     )?;
-    bar.finish_and_clear();
     writeln!(
         out,
         "{} ({}, {} loss, margin {:.1} % of shed-able) on {} ({} split): {} cases, {} unsavable not scored",
@@ -567,17 +578,15 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
             trained.model.write(&file)?;
         }
         let secs: f64 = trained.epoch_seconds.iter().sum();
-        let bar = eval_bar(test.len(), o.quiet || args.no_simulate)?;
-        let eval = evaluate(
+        let eval = evaluate_with_bar(
             &trained.model,
             &data,
             &test,
             unsavable,
             !args.no_simulate,
             args.jobs,
-            &|| bar.inc(1),
+            o.quiet,
         )?;
-        bar.finish_and_clear();
         rows.push((
             name,
             eval.overall(),

@@ -258,18 +258,10 @@ pub fn model_file(
     params: &[Array],
     data: &Dataset,
 ) -> ModelFile {
-    let weights = params
-        .iter()
-        .map(|a| Array {
-            name: a.name.clone(),
-            shape: a.shape.clone(),
-            data: a.data.clone(),
-        })
-        .collect();
     ModelFile::new(
         arch.clone(),
         norm.clone(),
-        weights,
+        params.to_vec(),
         data.generator.fingerprint,
         data.grid().name.clone(),
     )
