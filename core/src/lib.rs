@@ -74,6 +74,7 @@ mod error;
 pub mod format;
 mod model;
 pub mod powerflow;
+pub mod shed;
 pub mod synthetic;
 pub mod topology;
 pub mod ybus;

@@ -2,7 +2,7 @@
 //! (alone, or with a second branch at the faulted bus), synchronous-machine trips and
 //! wind-plant trips. Faults whose clearing would split the grid are left out.
 
-use holdfast_core::dynamics::{Event, TimedEvent};
+use holdfast_core::dynamics::{TimedEvent, contingency_events};
 use holdfast_core::topology::islands;
 use holdfast_core::{BranchIdx, BusIdx, Grid, MachineIdx, Outages, WindIdx};
 use rand::Rng;
@@ -67,50 +67,19 @@ pub struct Contingency {
 impl Contingency {
     /// When the contingency is over (fault cleared or unit tripped), s.
     pub fn settled_at_s(&self, s: &ContingencySettings) -> f64 {
-        match self.fault_bus {
-            Some(_) => s.event_at_s + s.clearing_time_s,
-            None => s.event_at_s,
-        }
+        s.timing().settled_at_s(self.fault_bus.is_some())
     }
 
     /// Its events.
     pub fn events(&self, s: &ContingencySettings) -> Vec<TimedEvent> {
-        let mut out = Vec::new();
-        let clear = self.settled_at_s(s);
-        if let Some(bus) = self.fault_bus {
-            let bus = BusIdx(bus);
-            out.push(TimedEvent {
-                t_s: s.event_at_s,
-                event: Event::Fault {
-                    bus,
-                    r_pu: 0.0,
-                    x_pu: s.fault_x_pu,
-                },
-            });
-            out.push(TimedEvent {
-                t_s: clear,
-                event: Event::ClearFault { bus },
-            });
-        }
-        for &b in &self.branches {
-            out.push(TimedEvent {
-                t_s: clear,
-                event: Event::TripBranch(BranchIdx(b)),
-            });
-        }
-        if let Some(m) = self.machine {
-            out.push(TimedEvent {
-                t_s: s.event_at_s,
-                event: Event::TripMachine(MachineIdx(m)),
-            });
-        }
-        if let Some(w) = self.wind {
-            out.push(TimedEvent {
-                t_s: s.event_at_s,
-                event: Event::TripWind(WindIdx(w)),
-            });
-        }
-        out
+        let branches: Vec<BranchIdx> = self.branches.iter().map(|&b| BranchIdx(b)).collect();
+        contingency_events(
+            &s.timing(),
+            self.fault_bus.map(BusIdx),
+            &branches,
+            self.machine.map(MachineIdx),
+            self.wind.map(WindIdx),
+        )
     }
 }
 

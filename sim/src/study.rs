@@ -6,6 +6,7 @@ pub use holdfast_core::format::fnv1a64;
 use std::path::{Path, PathBuf};
 
 use holdfast_core::dynamics::{MachineModelChoice, SimulationOptions, StabilityCriteria};
+pub use holdfast_core::shed::Placement;
 use holdfast_core::{Error, Grid, Problem, format};
 use serde::Deserialize;
 use toml::Spanned;
@@ -133,24 +134,13 @@ pub struct ContingencySettings {
     pub exclude: Vec<String>,
 }
 
-/// How a total shed amount is spread over the candidate buses.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Placement {
-    /// Every candidate sheds the same share of its shed-able load.
-    Uniform,
-    /// Shares weighted by shed-able load over electrical distance to the disturbance.
-    DistanceWeighted,
-    /// The electrically nearest candidates shed all they can first.
-    NearestFirst,
-}
-
-impl Placement {
-    /// The name used in study files.
-    pub fn name(self) -> &'static str {
-        match self {
-            Placement::Uniform => "uniform",
-            Placement::DistanceWeighted => "distance_weighted",
-            Placement::NearestFirst => "nearest_first",
+impl ContingencySettings {
+    /// The timing part, as the dynamic engine's contingency builder takes it.
+    pub fn timing(&self) -> holdfast_core::dynamics::ContingencyTiming {
+        holdfast_core::dynamics::ContingencyTiming {
+            event_at_s: self.event_at_s,
+            clearing_time_s: self.clearing_time_s,
+            fault_x_pu: self.fault_x_pu,
         }
     }
 }

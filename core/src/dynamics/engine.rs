@@ -48,7 +48,7 @@ use crate::{Complex, Error};
 pub const MAX_STEP_HALVINGS: usize = 4;
 
 /// Options of a dynamic simulation.
-#[derive(Clone, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct SimulationOptions {
     /// Integration step, s; `None` means half a cycle of the grid's nominal frequency.
     pub step_s: Option<f64>,

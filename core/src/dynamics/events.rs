@@ -62,6 +62,76 @@ pub struct TimedEvent {
     pub event: Event,
 }
 
+/// When a contingency happens and how its fault looks: shared by the labelling runs and the
+/// advice re-check, so both simulate the same sequence.
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ContingencyTiming {
+    /// Time of the fault or trip, s.
+    pub event_at_s: f64,
+    /// Fault duration until the protection trips the faulted branches, s.
+    pub clearing_time_s: f64,
+    /// Fault reactance, pu.
+    pub fault_x_pu: f64,
+}
+
+impl ContingencyTiming {
+    /// When a contingency is over: the fault cleared, or the unit tripped, s.
+    pub fn settled_at_s(&self, faulted: bool) -> f64 {
+        if faulted {
+            self.event_at_s + self.clearing_time_s
+        } else {
+            self.event_at_s
+        }
+    }
+}
+
+/// The events of a contingency: a bolted-through-`fault_x_pu` fault at `fault_bus` cleared by
+/// tripping `branches` after the clearing time (or, without a fault, the branches tripped at
+/// the event time), and the trip of a machine or wind plant.
+pub fn contingency_events(
+    timing: &ContingencyTiming,
+    fault_bus: Option<BusIdx>,
+    branches: &[BranchIdx],
+    machine: Option<MachineIdx>,
+    wind: Option<WindIdx>,
+) -> Vec<TimedEvent> {
+    let mut out = Vec::new();
+    let clear = timing.settled_at_s(fault_bus.is_some());
+    if let Some(bus) = fault_bus {
+        out.push(TimedEvent {
+            t_s: timing.event_at_s,
+            event: Event::Fault {
+                bus,
+                r_pu: 0.0,
+                x_pu: timing.fault_x_pu,
+            },
+        });
+        out.push(TimedEvent {
+            t_s: clear,
+            event: Event::ClearFault { bus },
+        });
+    }
+    for &b in branches {
+        out.push(TimedEvent {
+            t_s: clear,
+            event: Event::TripBranch(b),
+        });
+    }
+    if let Some(m) = machine {
+        out.push(TimedEvent {
+            t_s: timing.event_at_s,
+            event: Event::TripMachine(m),
+        });
+    }
+    if let Some(w) = wind {
+        out.push(TimedEvent {
+            t_s: timing.event_at_s,
+            event: Event::TripWind(w),
+        });
+    }
+    out
+}
+
 /// A named list of timed events.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct Scenario {

@@ -26,8 +26,8 @@ pub use engine::{
     simulate,
 };
 pub use events::{
-    ACTIONS, BOLTED_FAULT_X_PU, Event, Scenario, TimedEvent, parse_event_line, parse_scenario,
-    read_scenario,
+    ACTIONS, BOLTED_FAULT_X_PU, ContingencyTiming, Event, Scenario, TimedEvent, contingency_events,
+    parse_event_line, parse_scenario, read_scenario,
 };
 pub use reduction::{
     ClassicalInitialState, ReducedNetwork, classical_initial_states, load_admittances,

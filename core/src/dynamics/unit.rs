@@ -10,7 +10,7 @@ use crate::Complex;
 use crate::model::{ExciterData, GovernorData, Grid};
 
 /// Which machine model a simulation uses.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub enum MachineModelChoice {
     /// Constant voltage behind transient reactance for every machine (exciters ignored).
     Classical,

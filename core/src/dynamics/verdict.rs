@@ -8,7 +8,7 @@ use std::fmt;
 
 /// Thresholds of the stability verdict. Voltages are shares of each bus's pre-contingency
 /// voltage; frequencies are in Hz.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct StabilityCriteria {
     /// Largest allowed angle between a machine's rotor and its island's centre of inertia,
     /// degrees. Default 180 (the usual screening rule; common practice, no single source).
