@@ -8,7 +8,7 @@ use std::time::Duration;
 use anyhow::{Context, Result, bail};
 use clap::{Args, Subcommand, ValueEnum};
 use holdfast_sim::dataset::{Sample, SampleBody};
-use holdfast_sim::generate::{BuildOptions, Generator, Progress, build};
+use holdfast_sim::generate::{BuildOptions, BuildReport, Generator, Progress, build};
 use holdfast_sim::label::Outcome;
 use holdfast_sim::report;
 use indicatif::{ProgressBar, ProgressStyle};
@@ -194,19 +194,14 @@ impl Progress for Bar {
     fn shard_written(&self, _: u32) {}
 }
 
-fn build_command(args: &BuildArgs, out: &mut impl Write) -> Result<()> {
-    if args.samples == 0 {
-        bail!("-n must be at least 1");
-    }
-    let generator = Generator::open(&args.study)?;
-    let opts = BuildOptions {
-        samples: args.samples,
-        out: args.out.clone(),
-        jobs: args.jobs,
-        part: args.shard.unwrap_or((1, 1)),
-        resume: args.resume,
-    };
-    let bar = if args.quiet {
+/// Builds (or resumes) a dataset with a progress bar; returns the report, the samples done
+/// and the seconds taken.
+pub(crate) fn build_with_bar(
+    generator: &Generator,
+    opts: &BuildOptions,
+    quiet: bool,
+) -> Result<(BuildReport, u64, f64)> {
+    let bar = if quiet {
         ProgressBar::hidden()
     } else {
         ProgressBar::new(0)
@@ -227,11 +222,27 @@ fn build_command(args: &BuildArgs, out: &mut impl Write) -> Result<()> {
         not_labelled: AtomicU64::new(0),
     };
     let started = std::time::Instant::now();
-    let report = build(&generator, &opts, &progress)?;
+    let report = build(generator, opts, &progress)?;
     progress.bar.finish_and_clear();
     let secs = started.elapsed().as_secs_f64();
     let done =
         progress.labelled.load(Ordering::Relaxed) + progress.not_labelled.load(Ordering::Relaxed);
+    Ok((report, done, secs))
+}
+
+fn build_command(args: &BuildArgs, out: &mut impl Write) -> Result<()> {
+    if args.samples == 0 {
+        bail!("-n must be at least 1");
+    }
+    let generator = Generator::open(&args.study)?;
+    let opts = BuildOptions {
+        samples: args.samples,
+        out: args.out.clone(),
+        jobs: args.jobs,
+        part: args.shard.unwrap_or((1, 1)),
+        resume: args.resume,
+    };
+    let (report, done, secs) = build_with_bar(&generator, &opts, args.quiet)?;
     writeln!(
         out,
         "{}: part {}/{}: {} shards owned, {} kept from before, {} written; {} samples in {:.1} s \

@@ -15,9 +15,7 @@ use indicatif::{ProgressBar, ProgressStyle};
 
 use crate::plot::{EvaluatedPoint, write_evaluation_plot};
 
-/// The caution printed with every evaluation and advice.
-pub(crate) const CAUTION: &str = "Decision support for studies and operators, not a protection \
-scheme: local grid codes, operating procedures and licensed engineers decide.";
+use holdfast_infer::CAUTION;
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
 pub(crate) enum ModelKind {
@@ -96,7 +94,7 @@ pub(crate) struct TrainOptions {
     study: Option<PathBuf>,
     /// No progress bar.
     #[arg(long)]
-    quiet: bool,
+    pub(crate) quiet: bool,
 }
 
 impl TrainOptions {
@@ -157,7 +155,7 @@ impl TrainOptions {
         })
     }
 
-    fn split_rule(&self) -> SplitRule {
+    pub(crate) fn split_rule(&self) -> SplitRule {
         SplitRule {
             seed: self.seed,
             shares: [
@@ -542,12 +540,36 @@ fn plot(path: &Path, eval: &Evaluation, title: &str) -> Result<()> {
 pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Result<()> {
     let o = &args.options;
     let data = read_dataset(&args.data, o.study.as_deref(), o.split_rule())?;
-    if let Some(dir) = &args.models {
+    compare(
+        &data,
+        o,
+        args.models.as_deref(),
+        !args.no_simulate,
+        args.jobs,
+        out,
+    )?;
+    writeln!(out, "{CAUTION}")?;
+    Ok(())
+}
+
+/// Trains and evaluates GraphSAGE and the MLP, each with the neutral and the averse loss, and
+/// prints the table; writes the models into `models` if given. Returns the four models in the
+/// order GraphSAGE neutral, GraphSAGE averse, MLP neutral, MLP averse.
+pub(crate) fn compare(
+    data: &Dataset,
+    o: &TrainOptions,
+    models: Option<&Path>,
+    simulate: bool,
+    jobs: usize,
+    out: &mut impl Write,
+) -> Result<Vec<ModelFile>> {
+    if let Some(dir) = models {
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     }
     let test = data.split(Split::Test);
     let unsavable = data.unsavable_in(&o.split_rule(), Some(Split::Test));
     let mut rows = Vec::new();
+    let mut trained_models = Vec::new();
     for (model, loss) in [
         (ModelKind::Sage, LossKind::Neutral),
         (ModelKind::Sage, LossKind::Averse),
@@ -568,8 +590,8 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
         );
         writeln!(out, "training {name} ...")?;
         out.flush()?;
-        let trained = run_training(&data, o, model, loss, &TrainRun::default())?;
-        if let Some(dir) = &args.models {
+        let trained = run_training(data, o, model, loss, &TrainRun::default())?;
+        if let Some(dir) = models {
             let file = dir.join(format!(
                 "{}-{}.hfmodel",
                 format!("{model:?}").to_lowercase(),
@@ -580,11 +602,11 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
         let secs: f64 = trained.epoch_seconds.iter().sum();
         let eval = evaluate_with_bar(
             &trained.model,
-            &data,
+            data,
             &test,
             unsavable,
-            !args.no_simulate,
-            args.jobs,
+            simulate,
+            jobs,
             o.quiet,
         )?;
         rows.push((
@@ -594,11 +616,12 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
             trained.model.training.epochs_run,
             secs,
         ));
+        trained_models.push(trained.model);
     }
     writeln!(
         out,
         "\n{}: test split, {} cases ({} unsavable not scored); safety margin target {:.1} % under-shed",
-        args.data.display(),
+        data.dir.display(),
         test.len(),
         unsavable,
         100.0 * o.target_under_rate
@@ -615,6 +638,5 @@ pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Resul
             100.0 * margin
         )?;
     }
-    writeln!(out, "{CAUTION}")?;
-    Ok(())
+    Ok(trained_models)
 }

@@ -1,7 +1,9 @@
-//! The `holdfast` command line: grid checks, power flow and dynamic simulation today; datasets,
-//! training and advice as the later work lands.
+//! The `holdfast` command line: grid checks and power flow, dynamic simulation, datasets,
+//! training and evaluation, advice (one-off and served), and the end-to-end demo.
 
+mod advise;
 mod dataset;
+mod demo;
 mod learn;
 mod plot;
 mod report;
@@ -19,14 +21,11 @@ use holdfast_core::{Grid, Outages, cdf, format};
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
-/// The bundled demo grid: fictional, built from typical parameter values (see its header).
-const DEMO_GRID: &str = include_str!("../scenarios/quillmoor.toml");
-const DEMO_GRID_NAME: &str = "scenarios/quillmoor.toml";
-
 /// Emergency load-shedding studies for low-inertia grids.
 ///
-/// Holdfast checks and solves grid models, and (as it grows) simulates contingencies, builds
-/// labelled datasets, trains a graph network and advises how much load to shed where.
+/// Holdfast checks and solves grid models, simulates contingencies, builds labelled datasets,
+/// trains a graph network and advises how much load to shed where, re-checking each action
+/// by simulation.
 /// Decision support for studies and operators, not a protection scheme: local grid codes,
 /// operating procedures and licensed engineers decide.
 ///
@@ -80,11 +79,26 @@ enum Command {
     /// Example: holdfast compare data/quillmoor --epochs 30
     #[command(verbatim_doc_comment)]
     Compare(learn::CompareArgs),
-    /// Run the pipeline on the bundled demo grid (today: check it and solve it at light,
-    /// nominal and peak load, then simulate its bundled contingencies with and without a shed).
+    /// Advise on one contingency: predict the shed per bus, re-check it by simulation and
+    /// escalate if it fails; print the answer (or JSON) and optionally plot the action.
+    ///
+    /// Example: holdfast advise models/quillmoor.hfmodel scenarios/quillmoor.toml \
+    ///     --snapshot scenarios/quillmoor-snapshot.json --contingency "trip=Northfall Hydro 1"
+    #[command(verbatim_doc_comment)]
+    Advise(advise::AdviseArgs),
+    /// Serve advice: one JSON request per line on stdin, one JSON answer per line on stdout
+    /// (schema in DEVELOPERS.md).
+    ///
+    /// Example: holdfast serve models/quillmoor.hfmodel scenarios/quillmoor.toml < requests.jsonl
+    #[command(verbatim_doc_comment)]
+    Serve(advise::ServeArgs),
+    /// Run the whole pipeline on the bundled demo grid: a labelled dataset, training and
+    /// evaluation of GraphSAGE and the MLP baseline, and one advised action with its re-check
+    /// and a plot (a few minutes on two cores; written under --out).
     ///
     /// Example: holdfast demo
-    Demo,
+    #[command(verbatim_doc_comment)]
+    Demo(demo::DemoArgs),
 }
 
 #[derive(Subcommand, Debug)]
@@ -244,7 +258,9 @@ fn run(cli: Cli) -> Result<()> {
         Command::Train(args) => learn::train_command(&args, &mut out)?,
         Command::Evaluate(args) => learn::evaluate_command(&args, &mut out)?,
         Command::Compare(args) => learn::compare_command(&args, &mut out)?,
-        Command::Demo => demo(&mut out)?,
+        Command::Advise(args) => advise::advise_command(&args, &mut out)?,
+        Command::Serve(args) => advise::serve_command(&args, &mut out)?,
+        Command::Demo(args) => demo::run(&args, &mut out)?,
     }
     out.flush()?;
     Ok(())
@@ -300,166 +316,6 @@ fn write_atomically(path: &Path, bytes: &[u8]) -> Result<()> {
     result.with_context(|| format!("cannot write {}", path.display()))
 }
 
-fn demo(out: &mut impl Write) -> Result<()> {
-    writeln!(out, "Holdfast demo on the bundled grid {DEMO_GRID_NAME}")?;
-    writeln!(
-        out,
-        "(a fictional grid of our own design, built from typical parameter values)"
-    )?;
-    writeln!(out)?;
-    let grid = format::parse_grid(DEMO_GRID, Path::new(DEMO_GRID_NAME))?;
-    let options = PowerFlowOptions::default();
-    for (label, scale) in [
-        ("light load", 0.6),
-        ("nominal load", 1.0),
-        ("peak load", 1.15),
-    ] {
-        let scaled = grid.with_load_scaled(scale);
-        let started = std::time::Instant::now();
-        let sol = solve(&scaled, &Outages::none(), &options)
-            .converged()
-            .with_context(|| format!("demo grid at {label} (x{scale})"))?;
-        let elapsed = started.elapsed();
-        writeln!(
-            out,
-            "=== {label} (loads x{scale}), solved in {:.2} ms ===",
-            elapsed.as_secs_f64() * 1e3
-        )?;
-        report::summary(out, &scaled, &sol, &Outages::none(), DEMO_GRID_NAME, scale)?;
-        writeln!(out)?;
-    }
-    demo_contingencies(out, &grid)?;
-    demo_dataset(out, &grid)?;
-    writeln!(
-        out,
-        "Next steps in the pipeline (training, advice) are being built; see the"
-    )?;
-    writeln!(out, "issues and DEVELOPERS.md.")?;
-    writeln!(out)?;
-    writeln!(out, "{}", report::CAUTION)?;
-    Ok(())
-}
-
-/// The demo grid's bundled contingencies (invented, in `scenarios/`), simulated at nominal load.
-const DEMO_SCENARIOS: [(&str, &str); 3] = [
-    (
-        "scenarios/quillmoor-fault.toml",
-        include_str!("../scenarios/quillmoor-fault.toml"),
-    ),
-    (
-        "scenarios/quillmoor-wind-loss.toml",
-        include_str!("../scenarios/quillmoor-wind-loss.toml"),
-    ),
-    (
-        "scenarios/quillmoor-breaker-failure.toml",
-        include_str!("../scenarios/quillmoor-breaker-failure.toml"),
-    ),
-];
-
-/// The bundled demo study (fictional, like its grid).
-const DEMO_STUDY: &str = include_str!("../scenarios/quillmoor-study.toml");
-const DEMO_STUDY_NAME: &str = "scenarios/quillmoor-study.toml";
-
-/// Labels a small dataset of the demo study into a temporary folder and prints its statistics.
-fn demo_dataset(out: &mut impl Write, grid: &Grid) -> Result<()> {
-    use holdfast_sim::generate::{BuildOptions, Generator, Quiet, build};
-    let samples = 100;
-    writeln!(
-        out,
-        "=== labelled dataset: {samples} samples of the demo study {DEMO_STUDY_NAME} ==="
-    )?;
-    let study = holdfast_sim::study::parse_study(DEMO_STUDY, Path::new(DEMO_STUDY_NAME))?;
-    let generator = Generator::new(study, grid.clone(), Path::new(DEMO_STUDY_NAME))?;
-    let dir = std::env::temp_dir().join(format!("holdfast-demo-dataset-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&dir);
-    let started = std::time::Instant::now();
-    let opts = BuildOptions {
-        samples,
-        out: dir.clone(),
-        jobs: 0,
-        part: (1, 1),
-        resume: false,
-    };
-    build(&generator, &opts, &Quiet)?;
-    let secs = started.elapsed().as_secs_f64();
-    let stats = holdfast_sim::report::stats(&dir)?;
-    let _ = std::fs::remove_dir_all(&dir);
-    writeln!(out, "labelled in {secs:.1} s on every core")?;
-    for line in stats.to_string().lines().skip(1).take(9) {
-        writeln!(out, "{line}")?;
-    }
-    writeln!(
-        out,
-        "(try: holdfast dataset build {DEMO_STUDY_NAME} -n 2000 -o data/quillmoor, then \
-         holdfast dataset stats data/quillmoor)"
-    )?;
-    writeln!(out)?;
-    Ok(())
-}
-
-fn demo_contingencies(out: &mut impl Write, grid: &Grid) -> Result<()> {
-    use holdfast_core::dynamics::{Event, SimulationOptions, TimedEvent, parse_scenario, simulate};
-    writeln!(
-        out,
-        "=== contingencies at nominal load: 10 s of dynamics each, half-cycle steps ==="
-    )?;
-    let pf = solve(grid, &Outages::none(), &PowerFlowOptions::default()).converged()?;
-    let options = SimulationOptions::default();
-    let verdict = |s: &holdfast_core::dynamics::Scenario| -> Result<(String, f64)> {
-        let started = std::time::Instant::now();
-        let r = simulate(grid, &Outages::none(), &pf, s, &options)?;
-        let ms = started.elapsed().as_secs_f64() * 1e3;
-        Ok((
-            match &r.verdict.failure {
-                None => "STABLE".to_string(),
-                Some(f) => format!(
-                    "UNSTABLE ({} at {:.2} s, {})",
-                    f.criterion, f.time_s, f.location
-                ),
-            },
-            ms,
-        ))
-    };
-    for (name, text) in DEMO_SCENARIOS {
-        let scenario = parse_scenario(text, Path::new(name), grid)?;
-        let (v, ms) = verdict(&scenario)?;
-        writeln!(out, "{}: {v} [{ms:.0} ms]", scenario.name)?;
-        if !v.starts_with("STABLE") {
-            // Try a quarter of every load's shed-able power, 0.25 s after the last event.
-            let mut shed = scenario.clone();
-            let t = scenario.events.iter().map(|e| e.t_s).fold(0.0, f64::max) + 0.25;
-            let mut total_mw = 0.0;
-            for l in grid
-                .loads
-                .iter()
-                .filter(|l| l.in_service && l.sheddable_fraction > 0.0)
-            {
-                let p = 0.25 * l.sheddable_fraction * l.p_pu;
-                total_mw += p * grid.s_base_mva;
-                shed.events.push(TimedEvent {
-                    t_s: t,
-                    event: Event::Shed {
-                        bus: l.bus,
-                        p_pu: p,
-                    },
-                });
-            }
-            let (v, ms) = verdict(&shed)?;
-            writeln!(
-                out,
-                "  with {total_mw:.0} MW shed at {t:.2} s (a quarter of the shed-able load): {v} [{ms:.0} ms]"
-            )?;
-        }
-    }
-    writeln!(
-        out,
-        "(try: holdfast simulate {DEMO_GRID_NAME} --scenario {} --plot run.svg)",
-        DEMO_SCENARIOS[0].0
-    )?;
-    writeln!(out)?;
-    Ok(())
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -472,6 +328,6 @@ mod tests {
 
     #[test]
     fn demo_grid_parses() {
-        format::parse_grid(DEMO_GRID, Path::new(DEMO_GRID_NAME)).unwrap();
+        format::parse_grid(demo::DEMO_GRID, Path::new(demo::DEMO_GRID_NAME)).unwrap();
     }
 }

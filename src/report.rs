@@ -7,8 +7,7 @@ use holdfast_core::{BranchIdx, BusIdx, Grid, Outages, WindIdx};
 use serde::Serialize;
 
 /// The caution shown wherever Holdfast speaks of shedding load.
-pub(crate) const CAUTION: &str = "Caution: Holdfast is decision support for studies and operators, not a protection scheme.\n\
-Local grid codes, operating procedures and licensed engineers decide what is shed, where and when.";
+pub(crate) use holdfast_infer::CAUTION;
 
 /// Branch loading above which a branch is listed as a limit hit, % of its rating.
 const LOADING_LIMIT_PCT: f64 = 100.0;

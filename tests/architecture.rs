@@ -86,6 +86,7 @@ fn crate_dependencies_point_one_way() {
     for (krate, allowed) in [
         ("holdfast-sim", &["holdfast-core"][..]),
         ("holdfast-infer", &["holdfast-core"][..]),
+        ("holdfast-infer-capi", &["holdfast-infer"][..]),
         (
             "holdfast-learn",
             &["holdfast-core", "holdfast-sim", "holdfast-infer"][..],

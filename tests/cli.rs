@@ -116,25 +116,6 @@ fn bad_grid_file_names_file_line_field_and_value_and_exits_2() {
 }
 
 #[test]
-fn demo_checks_the_demo_grid_at_three_load_levels_with_the_caution() {
-    let out = holdfast(&["demo"]);
-    assert!(out.status.success(), "{}", text(&out.stderr));
-    let s = text(&out.stdout);
-    for level in ["light load", "nominal load", "peak load"] {
-        assert!(s.contains(level), "{s}");
-    }
-    assert!(s.contains("fictional"));
-    assert!(s.contains("not a protection scheme") && s.contains("licensed engineers"));
-    // The bundled contingencies, one of each kind (checked in core/tests/demo_grid.rs).
-    assert!(
-        s.contains("City North fault, one North Hub line lost: STABLE"),
-        "{s}"
-    );
-    assert!(s.contains("shed-able load): STABLE"), "{s}");
-    assert!(s.contains("rotor-angle separation"), "{s}");
-}
-
-#[test]
 fn help_shows_examples_and_the_caution() {
     let out = holdfast(&["--help"]);
     assert!(out.status.success());

@@ -1,5 +1,5 @@
-//! End-to-end tests of `holdfast train`, `evaluate` and `compare` on a small dataset of the demo
-//! study (fictional demo grid). Run with `--release`: training is slow unoptimised.
+//! End-to-end tests of `holdfast train`, `evaluate`, `compare`, `advise`, `serve` and `demo` on
+//! the demo study (fictional demo grid). Run with `--release`: training is slow unoptimised.
 
 #![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test code, where a panic is the failure report
 
@@ -193,4 +193,192 @@ fn compare_prints_one_table_of_four_rows() {
         );
     }
     assert_eq!(std::fs::read_dir(&dir).unwrap().count(), 4);
+}
+
+#[test]
+fn the_demo_runs_the_whole_pipeline_on_a_small_dataset() {
+    let dir = temp("demo");
+    let out = ok(&[
+        "demo",
+        "--samples",
+        "300",
+        "--epochs",
+        "3",
+        "--out",
+        s(&dir),
+        "--quiet",
+    ]);
+    for needle in [
+        "fictional",
+        "=== 1. the grid at nominal load",
+        "=== 2. labelled dataset: 300 samples",
+        "GraphSAGE / averse",
+        "MLP / neutral",
+        "=== 4. one advised action",
+        "labelled minimum shed",
+        "Advice: shed",
+        "Re-check runs:",
+        "not a protection scheme",
+        "licensed engineers",
+    ] {
+        assert!(out.contains(needle), "`{needle}` missing:\n{out}");
+    }
+    for file in [
+        "advice.svg",
+        "request.json",
+        "snapshot.json",
+        "models/sage-averse.hfmodel",
+    ] {
+        assert!(dir.join(file).exists(), "{file} missing");
+    }
+    // A second run resumes the dataset instead of building it again.
+    let again = ok(&[
+        "demo",
+        "--samples",
+        "300",
+        "--epochs",
+        "1",
+        "--out",
+        s(&dir),
+        "--quiet",
+    ]);
+    assert!(
+        again.contains("2 shards (2 kept from an earlier run)"),
+        "{again}"
+    );
+    // The request the demo wrote is answered by `serve`.
+    let request = std::fs::read_to_string(dir.join("request.json")).unwrap();
+    let answer = serve(&dir.join("models/sage-averse.hfmodel"), &request);
+    assert!(answer.contains("\"path\""), "{answer}");
+}
+
+/// Runs `holdfast serve MODEL scenarios/quillmoor.toml` with `input` on stdin; returns stdout.
+fn serve(model: &Path, input: &str) -> String {
+    use std::io::Write;
+    let mut child = Command::new(env!("CARGO_BIN_EXE_holdfast"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args(["serve", s(model), "scenarios/quillmoor.toml"])
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(input.as_bytes())
+        .unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+/// The bundled example request (a case of the demo study) and the contingency it names, in the
+/// command-line form.
+fn bundled_request() -> (String, String) {
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("scenarios/quillmoor-request.json"),
+    )
+    .unwrap();
+    let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let c = &v["contingency"];
+    let mut items: Vec<String> = c["fault_bus"]
+        .as_u64()
+        .map(|b| format!("fault={b}"))
+        .into_iter()
+        .collect();
+    for t in c["trip"].as_array().unwrap() {
+        items.push(format!("trip={}", t.as_str().unwrap()));
+    }
+    (text, items.join(","))
+}
+
+#[test]
+fn the_shipped_model_advises_on_the_bundled_case_from_the_command_line_and_the_service() {
+    let model = Path::new("models/quillmoor.hfmodel");
+    let (request, contingency) = bundled_request();
+    let out = ok(&[
+        "advise",
+        s(model),
+        "scenarios/quillmoor.toml",
+        "--snapshot",
+        "scenarios/quillmoor-snapshot.json",
+        "--contingency",
+        &contingency,
+    ]);
+    assert!(out.contains("Advice: shed"), "{out}");
+    assert!(out.contains("-> STABLE"), "{out}");
+    assert!(out.contains("licensed engineers"), "{out}");
+    // The request's own action delay, so the two surfaces answer the same question.
+    let delay: serde_json::Value = serde_json::from_str(&request).unwrap();
+    let delay = delay["action_delay_s"].as_f64().unwrap().to_string();
+    let json = ok(&[
+        "advise",
+        s(model),
+        "scenarios/quillmoor.toml",
+        "--snapshot",
+        "scenarios/quillmoor-snapshot.json",
+        "--contingency",
+        &contingency,
+        "--action-delay",
+        &delay,
+        "--json",
+    ]);
+    let advice: serde_json::Value = serde_json::from_str(json.trim()).unwrap();
+    assert_eq!(advice["outcome"], "stable", "{advice}");
+
+    // Two requests and a broken line: three answers, in order, the broken one an error.
+    let input = format!(
+        "{}\n{{\"id\": \"x\", \"snapshot\": 1}}\n{}\n",
+        request.trim(),
+        request.trim()
+    );
+    let answers: Vec<serde_json::Value> = serve(model, &input)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(answers.len(), 3);
+    assert_eq!(answers[0]["shed"], advice["shed"]);
+    assert_eq!(answers[1]["id"], "x");
+    assert!(
+        answers[1]["error"].as_str().unwrap().contains("snapshot"),
+        "{}",
+        answers[1]
+    );
+    assert_eq!(answers[2]["shed"], advice["shed"]);
+}
+
+#[test]
+fn a_bad_snapshot_file_is_named_with_the_field() {
+    let dir = temp("bad-snapshot");
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("scenarios/quillmoor-snapshot.json"),
+    )
+    .unwrap();
+    let mut v: serde_json::Value = serde_json::from_str(&text).unwrap();
+    v["load_p_mw"][2] = serde_json::json!("lots");
+    let bad = dir.join("snapshot.json");
+    std::fs::write(&bad, serde_json::to_string_pretty(&v).unwrap()).unwrap();
+    let (_, contingency) = bundled_request();
+    let out = holdfast(&[
+        "advise",
+        "models/quillmoor.hfmodel",
+        "scenarios/quillmoor.toml",
+        "--snapshot",
+        s(&bad),
+        "--contingency",
+        &contingency,
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("snapshot.json: field `load_p_mw[2]`: invalid type: string \"lots\"")
+            && err.contains("line "),
+        "{err}"
+    );
 }

@@ -218,6 +218,51 @@ impl Csr {
         Csr { start, index }
     }
 
+    /// Rebuilds the lists in place, rows sorted and de-duplicated as by [`Csr::from_lists`],
+    /// from the `(node, neighbour)` pairs that `pairs` emits (it is called twice: once to
+    /// count, once to fill). Reuses the storage: no allocation once it is large enough.
+    pub fn rebuild(
+        &mut self,
+        nodes: usize,
+        cursor: &mut Vec<u32>,
+        pairs: impl Fn(&mut dyn FnMut(usize, u32)),
+    ) {
+        self.start.clear();
+        self.start.resize(nodes + 1, 0);
+        pairs(&mut |i, _| self.start[i + 1] += 1);
+        for i in 0..nodes {
+            self.start[i + 1] += self.start[i];
+        }
+        self.index.clear();
+        self.index.resize(self.start[nodes] as usize, 0);
+        cursor.clear();
+        cursor.extend_from_slice(&self.start[..nodes]);
+        pairs(&mut |i, j| {
+            self.index[cursor[i] as usize] = j;
+            cursor[i] += 1;
+        });
+        // Sort each row and drop repeats (parallel branches), compacting towards the front.
+        let mut write = 0;
+        let mut row_start = 0;
+        for i in 0..nodes {
+            let row_end = self.start[i + 1] as usize;
+            self.index[row_start..row_end].sort_unstable();
+            self.start[i] = write as u32;
+            let mut previous = None;
+            for k in row_start..row_end {
+                let v = self.index[k];
+                if previous != Some(v) {
+                    self.index[write] = v;
+                    write += 1;
+                    previous = Some(v);
+                }
+            }
+            row_start = row_end;
+        }
+        self.start[nodes] = write as u32;
+        self.index.truncate(write);
+    }
+
     /// Number of nodes.
     pub fn len(&self) -> usize {
         self.start.len().saturating_sub(1)
@@ -307,6 +352,11 @@ impl GridContext {
     /// Number of branches.
     pub fn n_branch(&self) -> usize {
         self.branch_ends.len()
+    }
+
+    /// Electrical distances between buses of the intact grid, pu.
+    pub fn distance(&self) -> &DistanceMatrix {
+        &self.distance
     }
 
     /// The system base, MVA.
@@ -460,16 +510,50 @@ pub fn featurise(
     snap: &Snapshot,
     dist: &Disturbance,
 ) -> Result<GraphInput, FeatureError> {
+    let mut buffers = FeatureBuffers::default();
+    featurise_into(ctx, snap, dist, &mut buffers)?;
+    Ok(buffers.input)
+}
+
+/// Reusable storage for [`featurise_into`]: once it has held the inputs of a grid, building
+/// them again for the same grid allocates nothing.
+#[derive(Clone, Debug, Default)]
+pub struct FeatureBuffers {
+    /// The inputs last built.
+    pub input: GraphInput,
+    bus: Vec<f64>,
+    branch: Vec<f64>,
+    motor_weighted: Vec<f64>,
+    after: Vec<bool>,
+    cursor: Vec<u32>,
+}
+
+/// Like [`featurise`], into reused buffers; returns the inputs built.
+pub fn featurise_into<'b>(
+    ctx: &GridContext,
+    snap: &Snapshot,
+    dist: &Disturbance,
+    buffers: &'b mut FeatureBuffers,
+) -> Result<&'b GraphInput, FeatureError> {
     validate(ctx, snap, dist)?;
+    let FeatureBuffers {
+        input,
+        bus,
+        branch,
+        motor_weighted,
+        after,
+        cursor,
+    } = buffers;
     let s = ctx.s_base_mva;
     let n = ctx.n_bus;
     let m = ctx.n_branch();
     let fb = N_BUS_FEATURES;
-    let mut bus = vec![0.0f64; n * fb];
-    let mut sheddable_pu = vec![0.0; n];
+    reset(bus, n * fb);
+    reset(&mut input.sheddable_pu, n);
+    reset(motor_weighted, n);
+    let sheddable_pu = &mut input.sheddable_pu;
 
     let mut load_total = 0.0;
-    let mut motor_weighted = vec![0.0; n];
     for (k, &b) in ctx.load_bus.iter().enumerate() {
         let p = snap.load_p_mw[k] / s;
         bus[b * fb] += p;
@@ -539,8 +623,9 @@ pub fn featurise(
 
     // Branches: state before and after the contingency, flows from the snapshot's voltages.
     let fe = N_BRANCH_FEATURES;
-    let mut branch = vec![0.0f64; m * fe];
-    let mut after = vec![false; m];
+    reset(branch, m * fe);
+    after.clear();
+    after.resize(m, false);
     let voltage =
         |b: usize| Complex::from_polar(snap.bus_v_pu[b], snap.bus_angle_deg[b].to_radians());
     for k in 0..m {
@@ -573,43 +658,60 @@ pub fn featurise(
         row[8] = f64::from(u8::from(f == d_bus.get() || t == d_bus.get()));
     }
 
-    let mut bus_lists = vec![Vec::new(); n];
-    let mut incident = vec![Vec::new(); n];
-    for k in (0..m).filter(|&k| after[k]) {
-        let (f, t) = ctx.branch_ends[k];
-        if f != t {
-            bus_lists[f].push(t as u32);
-            bus_lists[t].push(f as u32);
+    let after = &*after;
+    let ends = &ctx.branch_ends;
+    input.bus_adj.rebuild(n, cursor, |emit| {
+        for k in (0..m).filter(|&k| after[k]) {
+            let (f, t) = ends[k];
+            if f != t {
+                emit(f, t as u32);
+                emit(t, f as u32);
+            }
         }
-        incident[f].push(k as u32);
-        incident[t].push(k as u32);
-    }
-    let mut branch_lists = vec![Vec::new(); m];
-    for at_bus in &incident {
-        for &a in at_bus {
-            for &b in at_bus {
-                if a != b {
-                    branch_lists[a as usize].push(b);
+    });
+    input.bus_branches.rebuild(n, cursor, |emit| {
+        for k in (0..m).filter(|&k| after[k]) {
+            let (f, t) = ends[k];
+            emit(f, k as u32);
+            emit(t, k as u32);
+        }
+    });
+    let GraphInput {
+        bus_branches,
+        branch_adj,
+        ..
+    } = &mut *input;
+    let incident = &*bus_branches;
+    branch_adj.rebuild(m, cursor, |emit| {
+        for at_bus in (0..n).map(|b| incident.neighbours(b)) {
+            for &a in at_bus {
+                for &b in at_bus {
+                    if a != b {
+                        emit(a as usize, b);
+                    }
                 }
             }
         }
-    }
-    Ok(GraphInput {
-        bus_x: bus.iter().map(|&x| x as f32).collect(),
-        branch_x: branch.iter().map(|&x| x as f32).collect(),
-        bus_adj: Csr::from_lists(bus_lists),
-        branch_adj: Csr::from_lists(branch_lists),
-        bus_branches: Csr::from_lists(incident),
-        sheddable_pu,
-    })
+    });
+    input.bus_x.clear();
+    input.bus_x.extend(bus.iter().map(|&x| x as f32));
+    input.branch_x.clear();
+    input.branch_x.extend(branch.iter().map(|&x| x as f32));
+    Ok(input)
+}
+
+/// Empties `v` and fills it with `len` zeros, keeping its storage.
+fn reset(v: &mut Vec<f64>, len: usize) {
+    v.clear();
+    v.resize(len, 0.0);
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
 
     /// Three buses in a ring (lossless lines, x = 0.1 pu), a machine at bus 2, a load at bus 3.
-    fn ring() -> Grid {
+    pub(crate) fn ring() -> Grid {
         let text = r#"
 format_version = 1
 name = "three-bus ring"
@@ -686,7 +788,7 @@ sheddable_fraction = 0.25
         holdfast_core::format::parse_grid(text, "ring.toml".as_ref()).unwrap()
     }
 
-    fn snapshot() -> Snapshot {
+    pub(crate) fn snapshot() -> Snapshot {
         Snapshot {
             bus_v_pu: vec![1.0, 0.98, 0.97],
             bus_angle_deg: vec![0.0, -5.0, -8.0],
@@ -849,5 +951,62 @@ sheddable_fraction = 0.25
         names.dedup();
         assert_eq!(names.len(), N_BUS_FEATURES + N_BRANCH_FEATURES);
         assert_eq!(BUS_FEATURES[BUS_SHEDDABLE], "sheddable_pu");
+    }
+
+    #[test]
+    fn lists_rebuilt_in_place_equal_lists_built_afresh() {
+        // Pseudo-random lists with repeats and empty rows, rebuilt into one reused Csr.
+        let mut state = 12_345_u64;
+        let mut next = move |m: u64| {
+            state = state
+                .wrapping_mul(6_364_136_223_846_793_005)
+                .wrapping_add(1);
+            (state >> 33) % m
+        };
+        let mut csr = Csr::default();
+        let mut cursor = Vec::new();
+        for round in 0..20 {
+            let nodes = 1 + next(30) as usize;
+            let lists: Vec<Vec<u32>> = (0..nodes)
+                .map(|_| (0..next(6)).map(|_| next(nodes as u64) as u32).collect())
+                .collect();
+            csr.rebuild(nodes, &mut cursor, |emit| {
+                for (i, l) in lists.iter().enumerate() {
+                    for &j in l {
+                        emit(i, j);
+                    }
+                }
+            });
+            assert_eq!(csr, Csr::from_lists(lists.clone()), "round {round}");
+        }
+    }
+
+    #[test]
+    fn reused_buffers_give_the_inputs_of_fresh_ones() {
+        let grid = ring();
+        let ctx = GridContext::new(&grid);
+        let trip = Disturbance {
+            kind: DisturbanceKind::MachineTrip,
+            disturbance_bus: BusIdx(1),
+            fault_bus: None,
+            tripped_branches: vec![],
+            tripped_machine: Some(MachineIdx(1)),
+            tripped_wind: None,
+        };
+        let fault = Disturbance {
+            kind: DisturbanceKind::BranchFault,
+            disturbance_bus: BusIdx(2),
+            fault_bus: Some(BusIdx(2)),
+            tripped_branches: vec![BranchIdx(1)],
+            tripped_machine: None,
+            tripped_wind: None,
+        };
+        let mut buffers = FeatureBuffers::default();
+        for d in [&trip, &fault, &trip] {
+            let reused = featurise_into(&ctx, &snapshot(), d, &mut buffers)
+                .unwrap()
+                .clone();
+            assert_eq!(reused, featurise(&ctx, &snapshot(), d).unwrap());
+        }
     }
 }

@@ -143,35 +143,54 @@ fn mean_rows(h: &[f32], width: usize, adj: &crate::features::Csr, out: &mut [f32
     }
 }
 
+/// Runs a GraphSAGE tower: `h` holds the inputs (`rows` rows) on entry and the embeddings on
+/// return; `out` and `agg` are scratch.
 fn sage_tower(
     layers: &[SageLayer],
-    x: Vec<f32>,
+    h: &mut Vec<f32>,
+    out: &mut Vec<f32>,
+    agg: &mut Vec<f32>,
     rows: usize,
     adj: &crate::features::Csr,
-) -> Vec<f32> {
-    let mut h = x;
+) {
     for layer in layers {
-        let mut agg = vec![0.0; rows * layer.w_self.inputs];
-        mean_rows(&h, layer.w_self.inputs, adj, &mut agg);
-        let mut out = vec![0.0; rows * layer.w_self.outputs];
-        layer.w_self.accumulate(&h, rows, &mut out);
-        layer.w_neigh.accumulate(&agg, rows, &mut out);
-        add_bias(&mut out, &layer.bias);
-        relu(&mut out);
-        h = out;
+        zeroed(agg, rows * layer.w_self.inputs);
+        mean_rows(h, layer.w_self.inputs, adj, agg);
+        zeroed(out, rows * layer.w_self.outputs);
+        layer.w_self.accumulate(h, rows, out);
+        layer.w_neigh.accumulate(agg, rows, out);
+        add_bias(out, &layer.bias);
+        relu(out);
+        std::mem::swap(h, out);
     }
-    h
 }
 
-fn normalise(x: &[f32], mean: &[f32], inv_std: &[f32]) -> Vec<f32> {
-    let w = mean.len();
-    let mut out = x.to_vec();
-    for row in out.chunks_mut(w) {
+/// Empties `v` and fills it with `len` zeros, keeping its storage.
+fn zeroed(v: &mut Vec<f32>, len: usize) {
+    v.clear();
+    v.resize(len, 0.0);
+}
+
+/// `out = (x - mean) * inv_std`, row by row.
+fn normalise_into(x: &[f32], mean: &[f32], inv_std: &[f32], out: &mut Vec<f32>) {
+    out.clear();
+    out.extend_from_slice(x);
+    for row in out.chunks_mut(mean.len()) {
         for ((v, m), s) in row.iter_mut().zip(mean).zip(inv_std) {
             *v = (*v - m) * s;
         }
     }
-    out
+}
+
+/// Scratch storage of the forward pass: once it has served one input of a grid, further
+/// passes on that grid allocate nothing.
+#[derive(Clone, Debug, Default)]
+pub struct ForwardBuffers {
+    bus: Vec<f32>,
+    branch: Vec<f32>,
+    out: Vec<f32>,
+    agg: Vec<f32>,
+    z: Vec<f32>,
 }
 
 impl Network {
@@ -227,6 +246,18 @@ impl Network {
 
     /// Per-bus shed, pu, before any safety margin; each within `0..=sheddable_pu`.
     pub fn predict(&self, input: &GraphInput) -> Result<Vec<f64>, ModelError> {
+        let mut out = Vec::new();
+        self.predict_into(input, &mut ForwardBuffers::default(), &mut out)?;
+        Ok(out)
+    }
+
+    /// Like [`Network::predict`], writing into `out` with reused scratch buffers.
+    pub fn predict_into(
+        &self,
+        input: &GraphInput,
+        buffers: &mut ForwardBuffers,
+        out: &mut Vec<f64>,
+    ) -> Result<(), ModelError> {
         let n = input.n_bus();
         let m = input.n_branch();
         if input.bus_x.len() != n * N_BUS_FEATURES || input.branch_x.len() != m * N_BRANCH_FEATURES
@@ -235,30 +266,40 @@ impl Network {
                 "input feature arrays do not match the feature set".into(),
             ));
         }
-        let xb = normalise(&input.bus_x, &self.bus_mean, &self.bus_inv_std);
-        let xe = normalise(&input.branch_x, &self.branch_mean, &self.branch_inv_std);
+        let ForwardBuffers {
+            bus: hb,
+            branch: he,
+            out: scratch,
+            agg,
+            z,
+        } = buffers;
+        normalise_into(&input.bus_x, &self.bus_mean, &self.bus_inv_std, hb);
+        normalise_into(&input.branch_x, &self.branch_mean, &self.branch_inv_std, he);
         let (head, head_bias) = &self.head;
-        let logits: Vec<f32> = match &self.body {
+        // The logits end up in `scratch`.
+        match &self.body {
             Body::Sage { bus, branch, fuse } => {
-                let hb = sage_tower(bus, xb, n, &input.bus_adj);
+                sage_tower(bus, hb, scratch, agg, n, &input.bus_adj);
                 let z = match fuse {
                     None => hb,
                     Some((w_bus, w_branch, bias)) => {
-                        let he = sage_tower(branch, xe, m, &input.branch_adj);
+                        sage_tower(branch, he, scratch, agg, m, &input.branch_adj);
                         let width = w_branch.inputs;
-                        let mut agg = vec![0.0; n * width];
-                        mean_rows(&he, width, &input.bus_branches, &mut agg);
-                        let mut z = vec![0.0; n * w_bus.outputs];
-                        w_bus.accumulate(&hb, n, &mut z);
-                        w_branch.accumulate(&agg, n, &mut z);
-                        add_bias(&mut z, bias);
-                        relu(&mut z);
+                        zeroed(agg, n * width);
+                        mean_rows(he, width, &input.bus_branches, agg);
+                        zeroed(z, n * w_bus.outputs);
+                        w_bus.accumulate(hb, n, z);
+                        w_branch.accumulate(agg, n, z);
+                        add_bias(z, bias);
+                        relu(z);
                         z
                     }
                 };
-                let mut out = vec![0.0; n];
-                head.accumulate(&z, n, &mut out);
-                out.iter().map(|v| v + head_bias[0]).collect()
+                zeroed(scratch, n);
+                head.accumulate(z, n, scratch);
+                for v in scratch.iter_mut() {
+                    *v += head_bias[0];
+                }
             }
             Body::Mlp {
                 layers,
@@ -271,34 +312,40 @@ impl Network {
                          the input has {n} and {m}"
                     )));
                 }
-                let mut h = xb;
-                h.extend_from_slice(&xe);
+                hb.extend_from_slice(he);
                 for (w, b) in layers {
-                    let mut out = vec![0.0; w.outputs];
-                    w.accumulate(&h, 1, &mut out);
-                    add_bias(&mut out, b);
-                    relu(&mut out);
-                    h = out;
+                    zeroed(scratch, w.outputs);
+                    w.accumulate(hb, 1, scratch);
+                    add_bias(scratch, b);
+                    relu(scratch);
+                    std::mem::swap(hb, scratch);
                 }
-                let mut out = vec![0.0; n];
-                head.accumulate(&h, 1, &mut out);
-                add_bias(&mut out, head_bias);
-                out
+                zeroed(scratch, n);
+                head.accumulate(hb, 1, scratch);
+                add_bias(scratch, head_bias);
             }
-        };
-        Ok(logits
-            .iter()
-            .zip(&input.sheddable_pu)
-            .map(|(&l, &s)| f64::from(sigmoid(l)) * s)
-            .collect())
+        }
+        out.clear();
+        out.extend(
+            scratch
+                .iter()
+                .zip(&input.sheddable_pu)
+                .map(|(&l, &s)| f64::from(sigmoid(l)) * s),
+        );
+        Ok(())
     }
 }
 
 /// Adds the safety margin: each bus sheds `min(sheddable, predicted + share * sheddable)`.
 pub fn apply_margin(pred_pu: &[f64], sheddable_pu: &[f64], share: f64) -> Vec<f64> {
-    pred_pu
-        .iter()
-        .zip(sheddable_pu)
-        .map(|(&p, &s)| (p + share * s).min(s))
-        .collect()
+    let mut out = pred_pu.to_vec();
+    apply_margin_in_place(&mut out, sheddable_pu, share);
+    out
+}
+
+/// [`apply_margin`] in place.
+pub fn apply_margin_in_place(shed_pu: &mut [f64], sheddable_pu: &[f64], share: f64) {
+    for (p, &s) in shed_pu.iter_mut().zip(sheddable_pu) {
+        *p = (*p + share * s).min(s);
+    }
 }

@@ -10,18 +10,23 @@
 //! The body holds the weights as plain `f32` arrays (row-major; a layer's weight is
 //! `[inputs, outputs]` and computes `y = x W + b`), the feature set it was trained on, the
 //! normalisation fitted on the training split, the safety margin, the grid's fingerprint and
-//! what training did. Files are written to a temporary name and renamed.
+//! what training did, and the settings the advisor re-checks an action with (copied from the
+//! study the training labels came from). Files are written to a temporary name and renamed.
+//!
+//! Layout history: version 1 had no re-check settings; version 2 adds them.
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
+use holdfast_core::dynamics::{ContingencyTiming, SimulationOptions};
 use holdfast_core::format::{seal, unseal};
+use holdfast_core::shed::Placement;
 use serde::{Deserialize, Serialize};
 
 use crate::features::{BRANCH_FEATURES, BUS_FEATURES, FEATURE_SET_VERSION};
 
 /// Model-file layout version written by this build.
-pub const MODEL_FORMAT_VERSION: u32 = 1;
+pub const MODEL_FORMAT_VERSION: u32 = 2;
 const MAGIC: &[u8; 8] = b"HFMODEL1";
 
 /// Errors of model files and weights, each naming the file or the array.
@@ -256,6 +261,22 @@ pub struct TrainingInfo {
     pub settings: Vec<(String, String)>,
 }
 
+/// How the advisor re-checks an action: the simulation the training labels came from, copied
+/// from the dataset's study when the model is written.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct RecheckSettings {
+    /// When the contingency happens, its clearing time and fault reactance.
+    pub timing: ContingencyTiming,
+    /// Shortest delay of the action after the contingency settled in the study, s.
+    pub action_delay_min_s: f64,
+    /// Longest such delay, s (the advisor's default: a later action needs at least as much).
+    pub action_delay_max_s: f64,
+    /// How the study placed a total over the candidate buses (escalation re-places by it).
+    pub placement: Placement,
+    /// The study's simulation settings (step, window, models, stability criteria).
+    pub simulation: SimulationOptions,
+}
+
 /// A model file's contents.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ModelFile {
@@ -281,6 +302,8 @@ pub struct ModelFile {
     pub grid_name: String,
     /// Training record.
     pub training: TrainingInfo,
+    /// How the advisor re-checks an action.
+    pub recheck: RecheckSettings,
 }
 
 impl ModelFile {
@@ -291,6 +314,7 @@ impl ModelFile {
         weights: Vec<Array>,
         grid_fingerprint: u64,
         grid_name: String,
+        recheck: RecheckSettings,
     ) -> ModelFile {
         ModelFile {
             format_version: MODEL_FORMAT_VERSION,
@@ -304,6 +328,7 @@ impl ModelFile {
             grid_fingerprint,
             grid_name,
             training: TrainingInfo::default(),
+            recheck,
         }
     }
 
@@ -384,18 +409,22 @@ impl ModelFile {
         };
         let body = unseal(MAGIC, bytes).map_err(damaged)?;
         let cfg = bincode::config::standard().with_limit::<{ 1 << 30 }>();
+        // The layout version leads the body: read it alone first, so a file of another layout
+        // is named as such rather than reported as undecodable.
+        let (format_version, _): (u32, usize) = bincode::serde::decode_from_slice(body, cfg)
+            .map_err(|e| damaged(format!("cannot decode the model: {e}")))?;
+        if format_version != MODEL_FORMAT_VERSION {
+            return Err(ModelError::Version {
+                path: path.to_path_buf(),
+                what: "model file layout",
+                found: format_version,
+                supported: MODEL_FORMAT_VERSION,
+            });
+        }
         let (model, used): (ModelFile, usize) = bincode::serde::decode_from_slice(body, cfg)
             .map_err(|e| damaged(format!("cannot decode the model: {e}")))?;
         if used != body.len() {
             return Err(damaged("trailing bytes after the model".into()));
-        }
-        if model.format_version != MODEL_FORMAT_VERSION {
-            return Err(ModelError::Version {
-                path: path.to_path_buf(),
-                what: "model file layout",
-                found: model.format_version,
-                supported: MODEL_FORMAT_VERSION,
-            });
         }
         if model.feature_set_version != FEATURE_SET_VERSION
             || model.bus_features != BUS_FEATURES
@@ -487,7 +516,23 @@ mod tests {
             weights,
             42,
             "test grid".into(),
+            test_recheck(),
         )
+    }
+
+    /// Re-check settings of no particular study (the values matter only to the advisor).
+    pub(crate) fn test_recheck() -> RecheckSettings {
+        RecheckSettings {
+            timing: ContingencyTiming {
+                event_at_s: 0.1,
+                clearing_time_s: 0.1,
+                fault_x_pu: 1e-4,
+            },
+            action_delay_min_s: 0.1,
+            action_delay_max_s: 0.3,
+            placement: Placement::DistanceWeighted,
+            simulation: SimulationOptions::default(),
+        }
     }
 
     #[test]
@@ -521,7 +566,7 @@ mod tests {
         let e = ModelFile::decode(&m.encode(), Path::new("m")).unwrap_err();
         assert_eq!(
             e.to_string(),
-            "m: model file layout version 99; this build reads version 1"
+            "m: model file layout version 99; this build reads version 2"
         );
         let mut m = small_model();
         m.bus_features.swap(0, 1);

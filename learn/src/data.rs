@@ -8,7 +8,7 @@ use holdfast_infer::features::{
     Disturbance, DisturbanceKind, FeatureError, GraphInput, GridContext, Snapshot, featurise,
 };
 use holdfast_sim::contingency::{Contingency, ContingencyKind};
-use holdfast_sim::dataset::{DatasetError, Labelled, Manifest, SampleBody};
+use holdfast_sim::dataset::{DatasetError, Labelled, Manifest, PointRecord, SampleBody};
 use holdfast_sim::generate::Generator;
 use holdfast_sim::label::Outcome;
 use holdfast_sim::report::for_each_sample;
@@ -155,7 +155,11 @@ pub fn disturbance_of(c: &Contingency) -> Disturbance {
 
 /// The snapshot of a stored sample, with shed-able load by the study's rule.
 pub fn snapshot_of(grid: &Grid, study: &Study, l: &Labelled) -> Snapshot {
-    let p = &l.point;
+    snapshot_of_point(grid, study, &l.point)
+}
+
+/// The snapshot of an operating point's record, with shed-able load by the study's rule.
+pub fn snapshot_of_point(grid: &Grid, study: &Study, p: &PointRecord) -> Snapshot {
     let s = grid.s_base_mva;
     let load_p_pu: Vec<f64> = p.load_p_mw.iter().map(|x| x / s).collect();
     Snapshot {

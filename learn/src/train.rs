@@ -8,9 +8,10 @@ use burn::prelude::*;
 use holdfast_core::format::{seal, unseal};
 use holdfast_infer::forward::Network;
 use holdfast_infer::model::{
-    Architecture, Array, Margin, ModelError, ModelFile, Normalisation, TrainingInfo, write_atomic,
+    Architecture, Array, Margin, ModelError, ModelFile, Normalisation, RecheckSettings,
+    TrainingInfo, write_atomic,
 };
-use holdfast_sim::study::fnv1a64;
+use holdfast_sim::study::{Study, fnv1a64};
 use rand::SeedableRng;
 use rand::seq::SliceRandom;
 use rand_chacha::ChaCha8Rng;
@@ -264,7 +265,20 @@ pub fn model_file(
         params.to_vec(),
         data.generator.fingerprint,
         data.grid().name.clone(),
+        recheck_settings(&data.generator.study),
     )
+}
+
+/// The settings the advisor re-checks an action with: the study's contingency timing,
+/// action delays, placement rule and simulation.
+pub fn recheck_settings(study: &Study) -> RecheckSettings {
+    RecheckSettings {
+        timing: study.contingencies.timing(),
+        action_delay_min_s: study.shedding.delay_min_s,
+        action_delay_max_s: study.shedding.delay_max_s,
+        placement: study.shedding.placement,
+        simulation: study.simulation.clone(),
+    }
 }
 
 /// Predictions of the serving forward pass (no margin), per example.

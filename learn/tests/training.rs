@@ -1,26 +1,31 @@
 //! Training checks on a dataset labelled here from the demo study (fictional demo grid):
 //! the network's gradients against finite differences, the burn forward pass against the
-//! plain-Rust one of `holdfast-infer`, learning sanity, determinism and resume.
+//! plain-Rust one of `holdfast-infer`, learning sanity, determinism and resume; and the
+//! advisor of `holdfast-infer` against the evaluation, with its escalation and fallback.
 //!
 //! Training code is about 25 times slower unoptimised: run these with `--release` (as CI does).
 
 #![allow(clippy::unwrap_used, clippy::expect_used)] // reason: test code, where a panic is the failure report
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::OnceLock;
+use std::time::Duration;
 
 use holdfast_infer::forward::Network;
-use holdfast_infer::model::Architecture;
-use holdfast_learn::data::{Dataset, Example, Split, SplitRule, read_dataset};
+use holdfast_infer::model::{Architecture, Array, ModelFile, Normalisation};
+use holdfast_infer::{AdvicePath, Advisor, Budget, CheckOutcome};
+use holdfast_learn::data::{
+    Dataset, Example, Split, SplitRule, disturbance_of, read_dataset, snapshot_of,
+};
 use holdfast_learn::evaluate::{Metrics, evaluate};
 use holdfast_learn::loss::Loss;
 use holdfast_learn::net::{
     build_batch, fit_normalisation, forward, init_parameters, parameter_tensors,
 };
 use holdfast_learn::train::{
-    Silent, TrainConfig, TrainRun, cpu_device, model_file, train, training_device,
+    Silent, TrainConfig, TrainRun, cpu_device, model_file, recheck_settings, train, training_device,
 };
-use holdfast_sim::dataset::SampleBody;
+use holdfast_sim::dataset::{Labelled, SampleBody};
 use holdfast_sim::generate::{BuildOptions, Generator, Quiet, build};
 use holdfast_sim::report::for_each_sample;
 use rand::SeedableRng;
@@ -409,5 +414,228 @@ fn fine_tuning_starts_from_the_given_weights() {
             &Silent
         )
         .is_err()
+    );
+}
+
+/// The stored labelled samples with these indices.
+fn labelled_samples(indices: &[u64]) -> std::collections::HashMap<u64, Labelled> {
+    let mut found = std::collections::HashMap::new();
+    for_each_sample(dataset_dir(), |s| {
+        if let SampleBody::Labelled(l) = &s.body
+            && indices.contains(&s.index)
+        {
+            found.insert(s.index, (**l).clone());
+        }
+    })
+    .unwrap();
+    found
+}
+
+fn advisor(model: &ModelFile, data: &Dataset) -> Advisor {
+    Advisor::new(model, Path::new("test.hfmodel"), data.grid().clone()).unwrap()
+}
+
+#[test]
+fn the_advisor_repeats_the_evaluation_on_the_same_cases() {
+    // The serving path (snapshot -> features -> forward -> margin -> re-check from a power flow
+    // of the snapshot) must give the evaluation's action and verdict on every test case: the
+    // evaluation re-simulates from the generator's own operating point.
+    let data = dataset();
+    let trained = train(
+        &data,
+        &config(sage(), Loss::Averse { under_weight: 4.0 }, 8),
+        &TrainRun::default(),
+        &Silent,
+    )
+    .unwrap();
+    let test = data.split(Split::Test);
+    let eval = evaluate(&trained.model, &data, &test, 0, true, 2, &|| {}).unwrap();
+    let advisor = advisor(&trained.model, &data);
+    let indices: Vec<u64> = eval.cases.iter().map(|c| c.index).collect();
+    let samples = labelled_samples(&indices);
+    let budget = Budget {
+        time: Duration::from_secs(60),
+        max_simulations: 1,
+    };
+    let mut stable = 0;
+    for case in &eval.cases {
+        let l = &samples[&case.index];
+        let snap = snapshot_of(data.grid(), &data.generator.study, l);
+        let dist = disturbance_of(&l.contingency);
+        let advice = advisor
+            .advise_disturbance(&snap, &dist, Some(l.delay_s), budget)
+            .unwrap();
+        assert!(
+            (advice.model_total_mw - case.advised_mw).abs() < 1e-6,
+            "sample {}: advisor {} MW, evaluation {} MW",
+            case.index,
+            advice.model_total_mw,
+            case.advised_mw
+        );
+        let first = &advice.checks[0];
+        assert_eq!(
+            first.outcome == CheckOutcome::Stable,
+            case.stable.unwrap(),
+            "sample {}: advisor {:?} ({:?}), evaluation {:?}",
+            case.index,
+            first.outcome,
+            first.failed,
+            case.failure
+        );
+        stable += usize::from(first.outcome == CheckOutcome::Stable);
+    }
+    println!(
+        "{} test cases: the advisor's action and verdict equal the evaluation's on all ({stable} stable)",
+        eval.cases.len()
+    );
+}
+
+/// A GraphSAGE model whose every output is sigmoid(-30) of the shed-able load: it advises no
+/// shed whatever the input.
+fn model_advising_nothing(data: &Dataset) -> ModelFile {
+    let arch = Architecture::Sage {
+        hidden: 4,
+        bus_layers: 1,
+        branch_layers: 1,
+    };
+    let weights = arch
+        .parameters()
+        .into_iter()
+        .map(|(name, shape)| {
+            let n = shape.iter().product::<usize>();
+            let value = if name == "head.bias" { -30.0 } else { 0.0 };
+            Array {
+                name,
+                shape,
+                data: vec![value; n],
+            }
+        })
+        .collect();
+    ModelFile::new(
+        arch,
+        Normalisation::identity(),
+        weights,
+        data.generator.fingerprint,
+        data.grid().name.clone(),
+        recheck_settings(&data.generator.study),
+    )
+}
+
+/// Test samples that need a clear amount of shed (at least three bisection tolerances) and
+/// were labelled without non-monotone trials.
+fn clear_shed_cases(data: &Dataset, n: usize) -> Vec<Labelled> {
+    let indices: Vec<u64> = data
+        .split(Split::Test)
+        .iter()
+        .filter(|e| e.needs_shed() && e.total_pu > 3.0 * e.tolerance_pu)
+        .map(|e| e.index)
+        .collect();
+    let samples = labelled_samples(&indices);
+    let mut cases: Vec<Labelled> = indices
+        .iter()
+        .map(|i| samples[i].clone())
+        .filter(|l| !l.label.non_monotone)
+        .collect();
+    cases.truncate(n);
+    cases
+}
+
+#[test]
+fn an_under_predicting_model_is_caught_by_the_recheck_and_escalated_to_a_stable_action() {
+    let data = dataset();
+    let model = model_advising_nothing(&data);
+    let advisor = advisor(&model, &data);
+    let cases = clear_shed_cases(&data, 5);
+    assert!(cases.len() >= 3, "only {} cases", cases.len());
+    let budget = Budget {
+        time: Duration::from_secs(60),
+        max_simulations: 40,
+    };
+    for l in &cases {
+        let snap = snapshot_of(data.grid(), &data.generator.study, l);
+        let dist = disturbance_of(&l.contingency);
+        let advice = advisor
+            .advise_disturbance(&snap, &dist, Some(l.delay_s), budget)
+            .unwrap();
+        println!(
+            "{}: label {:.1} MW; model {:.3} MW; checks {:?} -> {:?} {:.1} MW",
+            l.contingency.description,
+            l.label.total_mw,
+            advice.model_total_mw,
+            advice
+                .checks
+                .iter()
+                .map(|c| (c.total_mw.round(), c.outcome))
+                .collect::<Vec<_>>(),
+            advice.path,
+            advice.total_mw
+        );
+        assert!(advice.model_total_mw < 1e-6, "{}", advice.model_total_mw);
+        // The labelling found this case unstable without shed; the re-check must agree.
+        assert_eq!(advice.checks[0].outcome, CheckOutcome::Unstable);
+        assert_eq!(advice.path, AdvicePath::Escalated);
+        assert_eq!(advice.outcome, CheckOutcome::Stable);
+        assert_eq!(
+            advice.checks.last().map(|c| c.outcome),
+            Some(CheckOutcome::Stable)
+        );
+        // The first failure is one of too little shed, so the search raises the total; every
+        // total stays within the shed-able load.
+        assert!(advice.checks[1].total_mw > advice.checks[0].total_mw);
+        for c in &advice.checks {
+            assert!(
+                c.total_mw <= advice.sheddable_mw + 1e-6,
+                "{:?}",
+                advice.checks
+            );
+        }
+    }
+}
+
+#[test]
+fn when_the_budget_runs_out_the_conservative_action_is_returned_unchecked_and_said_so() {
+    let data = dataset();
+    let model = model_advising_nothing(&data);
+    let advisor = advisor(&model, &data);
+    let l = &clear_shed_cases(&data, 1)[0];
+    let snap = snapshot_of(data.grid(), &data.generator.study, l);
+    let dist = disturbance_of(&l.contingency);
+    // One simulation: the model's action fails it, and nothing is left for more.
+    let budget = Budget {
+        time: Duration::from_secs(60),
+        max_simulations: 1,
+    };
+    let advice = advisor
+        .advise_disturbance(&snap, &dist, Some(l.delay_s), budget)
+        .unwrap();
+    assert_eq!(advice.path, AdvicePath::Conservative);
+    assert_eq!(advice.outcome, CheckOutcome::Unchecked);
+    assert_eq!(advice.checks.len(), 1);
+    assert!(
+        advice.notes.iter().any(|n| n.contains("unchecked")),
+        "{:?}",
+        advice.notes
+    );
+    // The conservative action: after a unit trip, the lost output (at most the shed-able
+    // load); after a fault, every shed-able MW in the faulted bus's area.
+    let grid = data.grid();
+    let expected = match (dist.tripped_machine, dist.tripped_wind) {
+        (Some(m), _) => snap.machine_p_mw[m.get()].min(advice.sheddable_mw),
+        (None, Some(w)) => snap.wind_p_mw[w.get()].min(advice.sheddable_mw),
+        (None, None) => {
+            let area = grid.buses[dist.disturbance_bus.get()].area;
+            grid.loads
+                .iter()
+                .zip(&snap.load_sheddable_mw)
+                .filter(|(l, _)| grid.buses[l.bus.get()].area == area)
+                .map(|(_, s)| s)
+                .sum()
+        }
+    };
+    assert!(expected > 0.0);
+    assert!(
+        (advice.total_mw - expected).abs() < 1e-6 * grid.s_base_mva,
+        "{} vs {expected}",
+        advice.total_mw
     );
 }
