@@ -62,8 +62,12 @@ pub(crate) fn advise_command(args: &AdviseArgs, out: &mut impl Write) -> Result<
     let snapshot = read_snapshot(&args.snapshot)?;
     let spec = ContingencySpec::parse(&args.contingency)?;
     let dist = spec.resolve(advisor.grid())?;
-    if !(args.budget_ms.is_finite() && args.budget_ms > 0.0) {
-        anyhow::bail!("--budget-ms {}: must be a positive number", args.budget_ms);
+    let most_ms = holdfast_infer::advise::MAX_BUDGET.as_secs_f64() * 1e3;
+    if !(args.budget_ms.is_finite() && args.budget_ms > 0.0 && args.budget_ms <= most_ms) {
+        anyhow::bail!(
+            "--budget-ms {}: must be a positive number of at most {most_ms} ms",
+            args.budget_ms
+        );
     }
     let budget = Budget {
         time: std::time::Duration::from_secs_f64(args.budget_ms / 1e3),

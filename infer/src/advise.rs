@@ -59,6 +59,8 @@ pub const ESCALATION_MIN_STEP: f64 = 0.05;
 /// The search stops bisecting between a too-small and a too-large total closer than this
 /// share of all shed-able load.
 pub const ESCALATION_RESOLUTION: f64 = 0.01;
+/// Longest time budget accepted (longer ones are cut to it).
+pub const MAX_BUDGET: Duration = Duration::from_secs(3600);
 /// Simulated time between budget checks during a re-check run, s.
 const BUDGET_CHECK_EVERY_S: f64 = 0.25;
 
@@ -509,9 +511,10 @@ impl Advisor {
         let dist = request.contingency.resolve(&self.grid)?;
         let mut budget = Budget::default();
         if let Some(ms) = request.budget_ms {
-            if !(ms.is_finite() && ms > 0.0) {
+            if !(ms.is_finite() && ms > 0.0 && ms <= MAX_BUDGET.as_secs_f64() * 1e3) {
                 return Err(AdviseError::Request(format!(
-                    "budget_ms {ms}: must be a positive number"
+                    "budget_ms {ms}: must be a positive number of at most {} ms",
+                    MAX_BUDGET.as_millis()
                 )));
             }
             budget.time = Duration::from_secs_f64(ms / 1e3);
@@ -535,7 +538,7 @@ impl Advisor {
         budget: Budget,
     ) -> Result<Advice, AdviseError> {
         let start = Instant::now();
-        let deadline = start + budget.time;
+        let deadline = start + budget.time.min(MAX_BUDGET);
         let delay_s = action_delay_s.unwrap_or(self.recheck.action_delay_max_s);
         let mut timings = Timings::default();
         let (model_pu, sheddable_pu) = WORKSPACE.with(|cell| {
