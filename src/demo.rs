@@ -131,7 +131,7 @@ fn dataset(out: &mut impl Write, args: &DemoArgs, grid: &Grid, dir: &Path) -> Re
     Ok(())
 }
 
-/// Advises on the test case that needs the most shed, prints the answer beside the label,
+/// Advises on a typical test case (the median shed), prints the answer beside the label,
 /// writes the request (for `holdfast serve`) and a plot of the advised action.
 fn advise_one(
     out: &mut impl Write,
@@ -140,16 +140,18 @@ fn advise_one(
     data: &holdfast_learn::data::Dataset,
 ) -> Result<()> {
     let grid = advisor.grid();
-    let Some(case) = data
+    // A typical case: the median labelled shed among the test cases that need shed.
+    let mut need: Vec<_> = data
         .split(Split::Test)
         .into_iter()
         .filter(|e| e.needs_shed())
-        .max_by(|a, b| {
-            a.total_pu
-                .total_cmp(&b.total_pu)
-                .then(b.index.cmp(&a.index))
-        })
-    else {
+        .collect();
+    need.sort_by(|a, b| {
+        a.total_pu
+            .total_cmp(&b.total_pu)
+            .then(a.index.cmp(&b.index))
+    });
+    let Some(case) = need.get(need.len() / 2).copied() else {
         writeln!(out, "(no test case needs shed in this dataset)")?;
         return Ok(());
     };

@@ -83,7 +83,7 @@ enum Command {
     /// escalate if it fails; print the answer (or JSON) and optionally plot the action.
     ///
     /// Example: holdfast advise models/quillmoor.hfmodel scenarios/quillmoor.toml \
-    ///     --snapshot scenarios/quillmoor-snapshot.json --contingency "trip=Northfall Hydro 1"
+    ///     --snapshot scenarios/quillmoor-snapshot.json --contingency "trip=Southmarsh Combined Cycle 1"
     #[command(verbatim_doc_comment)]
     Advise(advise::AdviseArgs),
     /// Serve advice: one JSON request per line on stdin, one JSON answer per line on stdout

@@ -203,3 +203,30 @@ fn mutated_request_lines_always_get_one_json_answer() {
         })
         .unwrap();
 }
+
+#[test]
+fn out_of_range_budgets_and_delays_are_refused() {
+    let advisor = advisor();
+    let base = Request {
+        id: None,
+        snapshot: snapshot(advisor.grid()),
+        contingency: unit_trip(advisor.grid()),
+        action_delay_s: None,
+        budget_ms: None,
+        max_simulations: Some(0),
+    };
+    for (budget_ms, delay_s, needle) in [
+        (Some(1e300), None, "at most 3600000 ms"),
+        (Some(-5.0), None, "budget_ms -5"),
+        (None, Some(-0.1), "action_delay_s -0.1"),
+        (None, Some(1e9), "action_delay_s 1000000000"),
+    ] {
+        let request = Request {
+            budget_ms,
+            action_delay_s: delay_s,
+            ..base.clone()
+        };
+        let e = advisor.advise(&request).unwrap_err().to_string();
+        assert!(e.starts_with("request: ") && e.contains(needle), "{e}");
+    }
+}
