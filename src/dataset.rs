@@ -36,7 +36,20 @@ pub(crate) enum DatasetCommand {
         /// The folder to write.
         #[arg(short, long)]
         out: PathBuf,
+        /// Fail (exit 2) if any shard is missing from every input.
+        #[arg(long)]
+        require_complete: bool,
     },
+    /// Plan a build as a Slurm job array: writes OUT.slurm/ beside the dataset folder with
+    /// array.sbatch (one task per part, each resuming its own folder), merge.sbatch (runs once
+    /// every task succeeded) and submit.sh. Time and memory requests come from labelling a few
+    /// samples here first (stated in the scripts' comments).
+    ///
+    /// Example:
+    ///   holdfast dataset plan scenarios/vellmark-study.toml -n 1000000 --tasks 200 -o /scratch/vellmark
+    ///   bash /scratch/vellmark.slurm/submit.sh
+    #[command(verbatim_doc_comment)]
+    Plan(PlanArgs),
     /// Print a dataset's label shares, histogram, rejections and simulations per sample.
     ///
     /// Example: holdfast dataset stats data/quillmoor
@@ -96,6 +109,111 @@ pub(crate) struct BuildArgs {
     quiet: bool,
 }
 
+#[derive(Args, Debug)]
+pub(crate) struct PlanArgs {
+    /// The study file.
+    study: PathBuf,
+    /// Samples in the dataset.
+    #[arg(short = 'n', long = "samples")]
+    samples: u64,
+    /// Array tasks (parts).
+    #[arg(long)]
+    tasks: u32,
+    /// The dataset folder the merge writes (the plan goes beside it, in OUT.slurm).
+    #[arg(short, long)]
+    out: PathBuf,
+    /// Cores per array task.
+    #[arg(long, default_value_t = 4)]
+    cpus_per_task: u32,
+    /// Samples labelled here, on one core, to measure the cost per sample.
+    #[arg(long, default_value_t = 16)]
+    calibrate: u64,
+}
+
+/// Peak resident memory of this process so far, MB (Linux `VmHWM`; `None` elsewhere).
+fn peak_memory_mb() -> Option<f64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kb: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kb / 1024.0)
+}
+
+fn plan_command(args: &PlanArgs, out: &mut impl Write) -> Result<()> {
+    use holdfast_sim::plan::{PlanInput, slurm_plan};
+    if args.samples == 0 || args.tasks == 0 || args.cpus_per_task == 0 || args.calibrate == 0 {
+        bail!("-n, --tasks, --cpus-per-task and --calibrate must each be at least 1");
+    }
+    let generator = Generator::open(&args.study)?;
+    let shard_size = generator.study.shard_size as u64;
+    let shards = args.samples.div_ceil(shard_size);
+    if u64::from(args.tasks) > shards {
+        bail!(
+            "--tasks {}: the dataset has only {shards} shards of {shard_size} samples; use at \
+             most {shards} tasks",
+            args.tasks
+        );
+    }
+    let calibrate = args.calibrate.min(args.samples);
+    let started = std::time::Instant::now();
+    for i in 0..calibrate {
+        std::hint::black_box(generator.sample(i));
+    }
+    let seconds_per_sample = started.elapsed().as_secs_f64() / calibrate as f64;
+    let host = std::fs::read_to_string("/etc/hostname")
+        .map(|h| h.trim().to_string())
+        .unwrap_or_else(|_| "this machine".to_string());
+    let absolute = |p: &Path| std::path::absolute(p).with_context(|| p.display().to_string());
+    let input = PlanInput {
+        holdfast: std::env::current_exe().context("the path of this executable")?,
+        study: absolute(&args.study)?,
+        out: absolute(&args.out)?,
+        samples: args.samples,
+        shard_size,
+        tasks: args.tasks,
+        cpus_per_task: args.cpus_per_task,
+        seconds_per_sample,
+        measured: format!(
+            "samples 0-{} of the study labelled on one core of {host}",
+            calibrate - 1
+        ),
+        peak_memory_mb: peak_memory_mb().unwrap_or(0.0),
+    };
+    let plan = slurm_plan(&input);
+    for sub in ["logs", "parts"] {
+        let d = plan.dir.join(sub);
+        std::fs::create_dir_all(&d).with_context(|| format!("cannot create {}", d.display()))?;
+    }
+    for (name, text) in [
+        ("array.sbatch", &plan.array),
+        ("merge.sbatch", &plan.merge),
+        ("submit.sh", &plan.submit),
+    ] {
+        let path = plan.dir.join(name);
+        crate::write_atomically(&path, text.as_bytes())?;
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o755))
+            .with_context(|| format!("cannot make {} executable", path.display()))?;
+    }
+    writeln!(
+        out,
+        "{}: {} array tasks of at most {} samples on {} cores each, {} and {} MB per task \
+         (measured {:.3} core-seconds per sample on {calibrate} samples)",
+        plan.dir.display(),
+        args.tasks,
+        plan.samples_per_task,
+        args.cpus_per_task,
+        holdfast_sim::plan::slurm_time(plan.task_minutes),
+        plan.task_memory_mb,
+        seconds_per_sample
+    )?;
+    writeln!(
+        out,
+        "submit with: bash {}",
+        plan.dir.join("submit.sh").display()
+    )?;
+    Ok(())
+}
+
 fn parse_part(s: &str) -> Result<(u32, u32), String> {
     let (k, n) = s
         .split_once('/')
@@ -117,9 +235,22 @@ fn parse_part(s: &str) -> Result<(u32, u32), String> {
 pub(crate) fn run(cmd: &DatasetCommand, out: &mut impl Write) -> Result<()> {
     match cmd {
         DatasetCommand::Build(args) => build_command(args, out),
-        DatasetCommand::Merge { inputs, out: dir } => {
+        DatasetCommand::Plan(args) => plan_command(args, out),
+        DatasetCommand::Merge {
+            inputs,
+            out: dir,
+            require_complete,
+        } => {
             let r = report::merge(inputs, dir)?;
             writeln!(out, "{}: {} shards merged", dir.display(), r.shards)?;
+            if *require_complete && !r.missing.is_empty() {
+                bail!(
+                    "{}: shards missing from every input: {:?}; run their parts again \
+                     (they resume)",
+                    dir.display(),
+                    r.missing
+                );
+            }
             if !r.missing.is_empty() {
                 writeln!(
                     out,

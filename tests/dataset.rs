@@ -395,3 +395,79 @@ fn npz_export_holds_the_dataset_as_numpy_reads_it() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn a_planned_job_array_run_task_by_task_and_merged_equals_one_build() {
+    // The scripts run as Slurm would run them (each array task with its SLURM_ARRAY_TASK_ID,
+    // then the merge), here without Slurm; tests/slurm.sh submits them to a real one.
+    let dir = temp_dir("plan");
+    let study = study(&dir, 10);
+    let one = dir.join("one");
+    let planned = dir.join("planned");
+    let out = holdfast(&[
+        "dataset",
+        "plan",
+        study.to_str().unwrap(),
+        "-n",
+        "45",
+        "--tasks",
+        "4",
+        "--cpus-per-task",
+        "1",
+        "--calibrate",
+        "2",
+        "-o",
+        planned.to_str().unwrap(),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let said = text(&out.stdout);
+    assert!(
+        said.contains("4 array tasks of at most 20 samples"),
+        "{said}"
+    );
+    let plan_dir = dir.join("planned.slurm");
+    let array = std::fs::read_to_string(plan_dir.join("array.sbatch")).unwrap();
+    assert!(array.contains("#SBATCH --array=1-4"), "{array}");
+    assert!(array.contains("core-seconds per sample"), "{array}");
+    let bash = |script: &str, task: Option<u32>| {
+        let mut c = Command::new("bash");
+        c.arg(plan_dir.join(script));
+        if let Some(k) = task {
+            c.env("SLURM_ARRAY_TASK_ID", k.to_string())
+                .env("SLURM_CPUS_PER_TASK", "1");
+        }
+        let o = c.output().unwrap();
+        assert!(o.status.success(), "{script} {task:?}: {}", text(&o.stderr));
+    };
+    // The merge refuses while parts are missing, naming the first.
+    bash("array.sbatch", Some(2));
+    let o = Command::new("bash")
+        .arg(plan_dir.join("merge.sbatch"))
+        .output()
+        .unwrap();
+    assert!(!o.status.success());
+    assert!(text(&o.stderr).contains("part-1"), "{}", text(&o.stderr));
+    // Every task (task 2 again: it resumes and keeps its shards), then the merge.
+    for k in 1..=4 {
+        bash("array.sbatch", Some(k));
+    }
+    bash("merge.sbatch", None);
+    let o = holdfast(&[
+        "dataset",
+        "build",
+        study.to_str().unwrap(),
+        "-n",
+        "45",
+        "-o",
+        one.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert_eq!(shards(&planned), shards(&one));
+    let shard_files = shards(&one)
+        .iter()
+        .filter(|(name, _)| name.starts_with("shard-"))
+        .count();
+    assert_eq!(shard_files, 5);
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -23,6 +23,7 @@ pub mod dataset;
 pub mod generate;
 pub mod label;
 pub mod npz;
+pub mod plan;
 pub mod report;
 pub mod sampling;
 pub mod shed;
