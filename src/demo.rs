@@ -12,10 +12,8 @@ use clap::Args;
 use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{Grid, Outages, format};
 use holdfast_infer::{Advisor, CAUTION, ContingencySpec, Request};
-use holdfast_learn::data::{Split, disturbance_of, read_dataset, snapshot_of};
-use holdfast_sim::dataset::SampleBody;
+use holdfast_learn::data::{Split, disturbance_of, read_dataset, read_labelled, snapshot_of};
 use holdfast_sim::generate::{BuildOptions, Generator};
-use holdfast_sim::report::for_each_sample;
 
 use crate::learn::TrainOptions;
 use crate::{advise, report};
@@ -155,33 +153,12 @@ fn advise_one(
         writeln!(out, "(no test case needs shed in this dataset)")?;
         return Ok(());
     };
-    let mut labelled = None;
-    for_each_sample(&data.dir, |s| {
-        if s.index == case.index
-            && let SampleBody::Labelled(l) = &s.body
-        {
-            labelled = Some(l.clone());
-        }
-    })?;
-    let l = labelled.context("the chosen test case is missing from the dataset")?;
+    let l = read_labelled(&data.dir, &[case.index])?
+        .remove(&case.index)
+        .context("the chosen test case is missing from the dataset")?;
     let snapshot = snapshot_of(grid, &data.generator.study, &l);
     let dist = disturbance_of(&l.contingency);
-    let spec = ContingencySpec {
-        fault_bus: dist.fault_bus.map(|b| grid.buses[b.get()].number),
-        trip: dist
-            .tripped_branches
-            .iter()
-            .map(|b| grid.branches[b.get()].id.clone())
-            .chain(
-                dist.tripped_machine
-                    .map(|m| grid.machines[m.get()].id.clone()),
-            )
-            .chain(
-                dist.tripped_wind
-                    .map(|w| grid.wind_plants[w.get()].id.clone()),
-            )
-            .collect(),
-    };
+    let spec = ContingencySpec::of(grid, &dist);
     let request = Request {
         id: Some(format!("demo-sample-{}", case.index)),
         snapshot: snapshot.clone(),
@@ -196,7 +173,7 @@ fn advise_one(
         "Test sample {} ({}): labelled minimum shed {:.1} MW (bisection to {:.1} MW), action {:.2} s after clearing",
         case.index, l.contingency.description, l.label.total_mw, l.label.tolerance_mw, l.delay_s
     )?;
-    let spec_text = spec_text(&spec);
+    let spec_text = spec.text();
     advise::print_advice(out, advisor, &spec_text, &advice)?;
     let request_path = args.out.join("request.json");
     let snapshot_path = args.out.join("snapshot.json");
@@ -235,14 +212,4 @@ fn advise_one(
         request_path.display()
     )?;
     Ok(())
-}
-
-/// The command-line form of a contingency.
-fn spec_text(spec: &ContingencySpec) -> String {
-    spec.fault_bus
-        .map(|b| format!("fault={b}"))
-        .into_iter()
-        .chain(spec.trip.iter().map(|t| format!("trip={t}")))
-        .collect::<Vec<_>>()
-        .join(",")
 }

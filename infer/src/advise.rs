@@ -134,6 +134,37 @@ impl ContingencySpec {
         Ok(spec)
     }
 
+    /// The command-line form [`ContingencySpec::parse`] reads, e.g. `fault=7,trip=L7-8`.
+    pub fn text(&self) -> String {
+        self.fault_bus
+            .map(|b| format!("fault={b}"))
+            .into_iter()
+            .chain(self.trip.iter().map(|t| format!("trip={t}")))
+            .collect::<Vec<_>>()
+            .join(",")
+    }
+
+    /// The names of a resolved disturbance ([`ContingencySpec::resolve`] reversed). The
+    /// disturbance's indices must belong to `grid`.
+    pub fn of(grid: &Grid, dist: &Disturbance) -> ContingencySpec {
+        ContingencySpec {
+            fault_bus: dist.fault_bus.map(|b| grid.buses[b.get()].number),
+            trip: dist
+                .tripped_branches
+                .iter()
+                .map(|b| grid.branches[b.get()].id.clone())
+                .chain(
+                    dist.tripped_machine
+                        .map(|m| grid.machines[m.get()].id.clone()),
+                )
+                .chain(
+                    dist.tripped_wind
+                        .map(|w| grid.wind_plants[w.get()].id.clone()),
+                )
+                .collect(),
+        }
+    }
+
     /// Resolves the names against a grid, checking the combination is a kind the model knows.
     pub fn resolve(&self, grid: &Grid) -> Result<Disturbance, AdviseError> {
         let bad = |m: String| AdviseError::Contingency(m);
@@ -495,14 +526,29 @@ impl Advisor {
         dist: &Disturbance,
         ws: &mut Workspace,
     ) -> Result<(), AdviseError> {
+        self.predict_timed(snap, dist, ws, &mut Timings::default())
+    }
+
+    /// [`Advisor::predict`], recording the features' and the forward pass's time.
+    fn predict_timed(
+        &self,
+        snap: &Snapshot,
+        dist: &Disturbance,
+        ws: &mut Workspace,
+        timings: &mut Timings,
+    ) -> Result<(), AdviseError> {
         let Workspace {
             features,
             forward,
             shed_pu,
         } = ws;
+        let t = Instant::now();
         let input = featurise_into(&self.ctx, snap, dist, features)?;
+        timings.features_us = micros(t.elapsed());
+        let t = Instant::now();
         self.network.predict_into(input, forward, shed_pu)?;
         apply_margin_in_place(shed_pu, &input.sheddable_pu, self.margin_share);
+        timings.forward_us = micros(t.elapsed());
         Ok(())
     }
 
@@ -543,19 +589,8 @@ impl Advisor {
         let mut timings = Timings::default();
         let (model_pu, sheddable_pu) = WORKSPACE.with(|cell| {
             let mut ws = cell.borrow_mut();
-            let t = Instant::now();
-            let Workspace {
-                features,
-                forward,
-                shed_pu,
-            } = &mut *ws;
-            let input = featurise_into(&self.ctx, snap, dist, features)?;
-            timings.features_us = micros(t.elapsed());
-            let t = Instant::now();
-            self.network.predict_into(input, forward, shed_pu)?;
-            apply_margin_in_place(shed_pu, &input.sheddable_pu, self.margin_share);
-            timings.forward_us = micros(t.elapsed());
-            Ok::<_, AdviseError>((shed_pu.clone(), input.sheddable_pu.clone()))
+            self.predict_timed(snap, dist, &mut ws, &mut timings)?;
+            Ok::<_, AdviseError>((ws.shed_pu().to_vec(), ws.sheddable_pu().to_vec()))
         })?;
         let s = self.grid.s_base_mva;
         let mut notes = Vec::new();
@@ -1144,6 +1179,19 @@ mod tests {
         assert_eq!(d.kind, DisturbanceKind::MachineTrip);
         assert_eq!(d.disturbance_bus, BusIdx(1));
         assert_eq!(d.tripped_machine, Some(MachineIdx(1)));
+    }
+
+    #[test]
+    fn names_text_and_disturbances_convert_both_ways() {
+        let grid = ring();
+        for text in ["fault=3,trip=B-C", "fault=3,trip=B-C,trip=A-C", "trip=G2"] {
+            let spec = ContingencySpec::parse(text).unwrap();
+            assert_eq!(spec.text(), text);
+            assert_eq!(
+                ContingencySpec::of(&grid, &spec.resolve(&grid).unwrap()),
+                spec
+            );
+        }
     }
 
     #[test]

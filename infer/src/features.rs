@@ -548,9 +548,9 @@ pub fn featurise_into<'b>(
     let n = ctx.n_bus;
     let m = ctx.n_branch();
     let fb = N_BUS_FEATURES;
-    reset(bus, n * fb);
-    reset(&mut input.sheddable_pu, n);
-    reset(motor_weighted, n);
+    zeroed(bus, n * fb);
+    zeroed(&mut input.sheddable_pu, n);
+    zeroed(motor_weighted, n);
     let sheddable_pu = &mut input.sheddable_pu;
 
     let mut load_total = 0.0;
@@ -623,9 +623,8 @@ pub fn featurise_into<'b>(
 
     // Branches: state before and after the contingency, flows from the snapshot's voltages.
     let fe = N_BRANCH_FEATURES;
-    reset(branch, m * fe);
-    after.clear();
-    after.resize(m, false);
+    zeroed(branch, m * fe);
+    zeroed(after, m);
     let voltage =
         |b: usize| Complex::from_polar(snap.bus_v_pu[b], snap.bus_angle_deg[b].to_radians());
     for k in 0..m {
@@ -701,9 +700,9 @@ pub fn featurise_into<'b>(
 }
 
 /// Empties `v` and fills it with `len` zeros, keeping its storage.
-fn reset(v: &mut Vec<f64>, len: usize) {
+pub(crate) fn zeroed<T: Copy + Default>(v: &mut Vec<T>, len: usize) {
     v.clear();
-    v.resize(len, 0.0);
+    v.resize(len, T::default());
 }
 
 #[cfg(test)]

@@ -6,7 +6,7 @@
 //! `z_i = relu(h_i W_bus + mean_{k incident to i} e_k W_branch + b)`, and the head gives each
 //! bus `sigmoid(z_i w + c) * sheddable_i`, so no bus sheds more than it can.
 
-use crate::features::{GraphInput, N_BRANCH_FEATURES, N_BUS_FEATURES};
+use crate::features::{GraphInput, N_BRANCH_FEATURES, N_BUS_FEATURES, zeroed};
 use crate::model::{Architecture, ModelError, ModelFile};
 
 /// A dense layer: `[inputs, outputs]` weight, row-major.
@@ -163,12 +163,6 @@ fn sage_tower(
         relu(out);
         std::mem::swap(h, out);
     }
-}
-
-/// Empties `v` and fills it with `len` zeros, keeping its storage.
-fn zeroed(v: &mut Vec<f32>, len: usize) {
-    v.clear();
-    v.resize(len, 0.0);
 }
 
 /// `out = (x - mean) * inv_std`, row by row.

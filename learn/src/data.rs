@@ -179,6 +179,23 @@ pub fn snapshot_of_point(grid: &Grid, study: &Study, p: &PointRecord) -> Snapsho
     }
 }
 
+/// The labelled samples of a dataset folder with these indices (one pass over the shards;
+/// indices without a labelled sample are absent from the map).
+pub fn read_labelled(
+    dir: &Path,
+    indices: &[u64],
+) -> Result<std::collections::HashMap<u64, Labelled>, DataError> {
+    let mut found = std::collections::HashMap::new();
+    for_each_sample(dir, |s| {
+        if let SampleBody::Labelled(l) = &s.body
+            && indices.contains(&s.index)
+        {
+            found.insert(s.index, (**l).clone());
+        }
+    })?;
+    Ok(found)
+}
+
 /// Reads every labelled sample of a dataset folder. `study` replaces the folder's copy of the
 /// study (see [`Generator::for_dataset`]).
 pub fn read_dataset(

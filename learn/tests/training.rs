@@ -15,7 +15,7 @@ use holdfast_infer::forward::Network;
 use holdfast_infer::model::{Architecture, Array, ModelFile, Normalisation};
 use holdfast_infer::{AdvicePath, Advisor, Budget, CheckOutcome};
 use holdfast_learn::data::{
-    Dataset, Example, Split, SplitRule, disturbance_of, read_dataset, snapshot_of,
+    Dataset, Example, Split, SplitRule, disturbance_of, read_dataset, read_labelled, snapshot_of,
 };
 use holdfast_learn::evaluate::{Metrics, evaluate};
 use holdfast_learn::loss::Loss;
@@ -419,16 +419,7 @@ fn fine_tuning_starts_from_the_given_weights() {
 
 /// The stored labelled samples with these indices.
 fn labelled_samples(indices: &[u64]) -> std::collections::HashMap<u64, Labelled> {
-    let mut found = std::collections::HashMap::new();
-    for_each_sample(dataset_dir(), |s| {
-        if let SampleBody::Labelled(l) = &s.body
-            && indices.contains(&s.index)
-        {
-            found.insert(s.index, (**l).clone());
-        }
-    })
-    .unwrap();
-    found
+    read_labelled(dataset_dir(), indices).unwrap()
 }
 
 fn advisor(model: &ModelFile, data: &Dataset) -> Advisor {
