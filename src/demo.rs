@@ -12,7 +12,7 @@ use clap::Args;
 use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{Grid, Outages, format};
 use holdfast_infer::{Advisor, CAUTION, ContingencySpec, Request};
-use holdfast_learn::data::{Split, disturbance_of, read_dataset, read_labelled, snapshot_of};
+use holdfast_learn::data::{Split, disturbance_of, read_labelled, snapshot_of};
 use holdfast_sim::generate::{BuildOptions, Generator};
 
 use crate::learn::TrainOptions;
@@ -67,7 +67,7 @@ pub(crate) fn run(args: &DemoArgs, out: &mut impl Write) -> Result<()> {
         "=== 3. training and evaluation: GraphSAGE and the MLP baseline, neutral and averse loss ==="
     )?;
     let o = &args.train;
-    let data = read_dataset(&data_dir, None, o.split_rule())?;
+    let data = o.open(&data_dir)?;
     let jobs = if args.jobs == 0 {
         std::thread::available_parallelism().map_or(1, |n| n.get())
     } else {
@@ -140,7 +140,7 @@ fn advise_one(
     let grid = advisor.grid();
     // A typical case: the median labelled shed among the test cases that need shed.
     let mut need: Vec<_> = data
-        .split(Split::Test)
+        .collect(Some(Split::Test))?
         .into_iter()
         .filter(|e| e.needs_shed())
         .collect();
@@ -149,7 +149,7 @@ fn advise_one(
             .total_cmp(&b.total_pu)
             .then(a.index.cmp(&b.index))
     });
-    let Some(case) = need.get(need.len() / 2).copied() else {
+    let Some(case) = need.get(need.len() / 2) else {
         writeln!(out, "(no test case needs shed in this dataset)")?;
         return Ok(());
     };

@@ -7,8 +7,8 @@ use std::time::Duration;
 use anyhow::{Context, Result, bail};
 use clap::{Args, ValueEnum};
 use holdfast_infer::model::{Architecture, ModelFile};
-use holdfast_learn::data::{Dataset, Split, SplitRule, read_dataset};
-use holdfast_learn::evaluate::{Evaluation, Metrics, evaluate};
+use holdfast_learn::data::{Dataset, MemoryBudget, Split, SplitRule, open_dataset};
+use holdfast_learn::evaluate::{Evaluation, Metrics, evaluate_split};
 use holdfast_learn::loss::Loss;
 use holdfast_learn::train::{TrainConfig, TrainProgress, TrainRun, Trained, backend_name, train};
 use indicatif::{ProgressBar, ProgressStyle};
@@ -89,12 +89,33 @@ pub(crate) struct TrainOptions {
     /// Under-shed rate the safety margin is chosen for (on samples that need shed).
     #[arg(long, default_value_t = 0.05)]
     target_under_rate: f64,
+    /// Training samples shuffled together: each epoch visits the shards in a shuffled order
+    /// and shuffles windows of at least this many samples (memory holds one window).
+    #[arg(long, default_value_t = TrainConfig::SHUFFLE_WINDOW)]
+    shuffle_window: usize,
+    #[command(flatten)]
+    memory: MemoryOption,
     /// The study file the dataset was built with (only for datasets without their own copy).
     #[arg(long, value_name = "FILE")]
     study: Option<PathBuf>,
     /// No progress bar.
     #[arg(long)]
     pub(crate) quiet: bool,
+}
+
+/// How much of a dataset stays in memory.
+#[derive(Args, Debug, Clone)]
+pub(crate) struct MemoryOption {
+    /// Featurised samples kept in memory, MiB; shards beyond it are read from disk again on
+    /// every pass, so a dataset larger than memory still trains (slower).
+    #[arg(long, value_name = "MIB", default_value_t = 1024)]
+    memory_mb: usize,
+}
+
+impl MemoryOption {
+    fn budget(&self) -> MemoryBudget {
+        MemoryBudget::mib(self.memory_mb)
+    }
 }
 
 impl TrainOptions {
@@ -119,8 +140,8 @@ impl TrainOptions {
         if !(self.learning_rate > 0.0 && self.learning_rate < 1.0) {
             bail!("--learning-rate must be between 0 and 1");
         }
-        if self.hidden == 0 || self.layers == 0 {
-            bail!("--hidden and --layers must be at least 1");
+        if self.hidden == 0 || self.layers == 0 || self.shuffle_window == 0 {
+            bail!("--hidden, --layers and --shuffle-window must be at least 1");
         }
         let architecture = match model {
             ModelKind::Sage => Architecture::Sage {
@@ -152,7 +173,18 @@ impl TrainOptions {
             neighbours: (self.neighbours > 0).then_some(self.neighbours),
             split: self.split_rule(),
             target_under_rate: self.target_under_rate,
+            shuffle_window: self.shuffle_window,
         })
+    }
+
+    /// Opens the dataset with these options' split and memory budget.
+    pub(crate) fn open(&self, dir: &Path) -> Result<Dataset> {
+        Ok(open_dataset(
+            dir,
+            self.study.as_deref(),
+            self.split_rule(),
+            self.memory.budget(),
+        )?)
     }
 
     pub(crate) fn split_rule(&self) -> SplitRule {
@@ -213,6 +245,8 @@ pub(crate) struct EvaluateArgs {
     /// The study file the dataset was built with (only for datasets without their own copy).
     #[arg(long, value_name = "FILE")]
     study: Option<PathBuf>,
+    #[command(flatten)]
+    memory: MemoryOption,
     /// No progress bar.
     #[arg(long)]
     quiet: bool,
@@ -308,7 +342,7 @@ fn run_training(
 
 pub(crate) fn train_command(args: &TrainArgs, out: &mut impl Write) -> Result<()> {
     let o = &args.options;
-    let data = read_dataset(&args.data, o.study.as_deref(), o.split_rule())?;
+    let data = o.open(&args.data)?;
     let init_from = args.init_from.as_deref().map(ModelFile::read).transpose()?;
     let checkpoint = args.checkpoint.clone().unwrap_or_else(|| {
         let mut p = args.out.as_os_str().to_owned();
@@ -324,18 +358,18 @@ pub(crate) fn train_command(args: &TrainArgs, out: &mut impl Write) -> Result<()
         out,
         "{}: {} savable labelled samples ({} unsavable and {} unlabelled left out); backend {}",
         args.data.display(),
-        data.examples.len(),
+        data.counts.total(),
         data.unsavable.len(),
         data.unlabelled,
         backend_name()
     )?;
+    memory_line(out, &data)?;
     let trained = run_training(&data, o, o.model, o.loss, &run)?;
     trained.model.write(&args.out)?;
     // The model holds everything the checkpoint did that is worth keeping.
     let _ = std::fs::remove_file(&checkpoint);
     summary(out, &trained, &args.out)?;
-    let test = data.split(Split::Test);
-    let eval = evaluate(&trained.model, &data, &test, 0, false, 1, &|| {})?;
+    let eval = evaluate_split(&trained.model, &data, Some(Split::Test), false, 1, &|| {})?;
     let m = eval.overall();
     writeln!(
         out,
@@ -353,6 +387,23 @@ pub(crate) fn train_command(args: &TrainArgs, out: &mut impl Write) -> Result<()
         "(evaluate with re-simulation: holdfast evaluate {} {})",
         args.out.display(),
         args.data.display()
+    )?;
+    Ok(())
+}
+
+/// How much of the dataset is held in memory and how much is read from disk on every pass.
+fn memory_line(out: &mut impl Write, data: &Dataset) -> Result<()> {
+    let kept = data.shards_kept();
+    let all = data.shard_count();
+    writeln!(
+        out,
+        "{kept} of {all} shards held in memory ({:.0} MiB of featurised samples){}",
+        data.kept_bytes as f64 / f64::from(1 << 20),
+        if kept < all {
+            "; the rest are read from disk on every pass (--memory-mb sets the budget)"
+        } else {
+            ""
+        }
     )?;
     Ok(())
 }
@@ -428,8 +479,7 @@ fn legend(out: &mut impl Write) -> Result<()> {
 fn evaluate_with_bar(
     model: &ModelFile,
     data: &Dataset,
-    examples: &[&holdfast_learn::data::Example],
-    unsavable: usize,
+    split: Option<Split>,
     simulate: bool,
     jobs: usize,
     quiet: bool,
@@ -437,7 +487,7 @@ fn evaluate_with_bar(
     let bar = if quiet || !simulate {
         ProgressBar::hidden()
     } else {
-        ProgressBar::new(examples.len() as u64)
+        ProgressBar::new(split.map_or(data.counts.total(), |s| data.counts.of(s)) as u64)
     };
     bar.set_style(
         ProgressStyle::with_template(
@@ -447,9 +497,7 @@ fn evaluate_with_bar(
         .progress_chars("=> "),
     );
     bar.enable_steady_tick(Duration::from_millis(500));
-    let eval = evaluate(model, data, examples, unsavable, simulate, jobs, &|| {
-        bar.inc(1)
-    })?;
+    let eval = evaluate_split(model, data, split, simulate, jobs, &|| bar.inc(1))?;
     bar.finish_and_clear();
     Ok(eval)
 }
@@ -461,7 +509,12 @@ pub(crate) fn evaluate_command(args: &EvaluateArgs, out: &mut impl Write) -> Res
         seed: t.split_seed,
         shares: t.split_shares,
     };
-    let data = read_dataset(&args.data, args.study.as_deref(), rule)?;
+    let data = open_dataset(
+        &args.data,
+        args.study.as_deref(),
+        rule,
+        args.memory.budget(),
+    )?;
     model.check_grid(data.generator.fingerprint, &args.model)?;
     let same = t.study_hash == data.manifest.study_hash;
     let split = args.split.unwrap_or(if same {
@@ -476,16 +529,10 @@ pub(crate) fn evaluate_command(args: &EvaluateArgs, out: &mut impl Write) -> Res
             args.data.display()
         );
     }
-    let examples = match split {
-        SplitChoice::Test => data.split(Split::Test),
-        SplitChoice::All => data.examples.iter().collect(),
-    };
-    let unsavable = data.unsavable_in(&rule, (split == SplitChoice::Test).then_some(Split::Test));
     let eval = evaluate_with_bar(
         &model,
         &data,
-        &examples,
-        unsavable,
+        (split == SplitChoice::Test).then_some(Split::Test),
         !args.no_simulate,
         args.jobs,
         args.quiet,
@@ -539,7 +586,8 @@ fn plot(path: &Path, eval: &Evaluation, title: &str) -> Result<()> {
 
 pub(crate) fn compare_command(args: &CompareArgs, out: &mut impl Write) -> Result<()> {
     let o = &args.options;
-    let data = read_dataset(&args.data, o.study.as_deref(), o.split_rule())?;
+    let data = o.open(&args.data)?;
+    memory_line(out, &data)?;
     compare(
         &data,
         o,
@@ -566,8 +614,7 @@ pub(crate) fn compare(
     if let Some(dir) = models {
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     }
-    let test = data.split(Split::Test);
-    let unsavable = data.unsavable_in(&o.split_rule(), Some(Split::Test));
+    let unsavable = data.unsavable_in(Some(Split::Test));
     let mut rows = Vec::new();
     let mut trained_models = Vec::new();
     for (model, loss) in [
@@ -603,8 +650,7 @@ pub(crate) fn compare(
         let eval = evaluate_with_bar(
             &trained.model,
             data,
-            &test,
-            unsavable,
+            Some(Split::Test),
             simulate,
             jobs,
             o.quiet,
@@ -622,7 +668,7 @@ pub(crate) fn compare(
         out,
         "\n{}: test split, {} cases ({} unsavable not scored); safety margin target {:.1} % under-shed",
         data.dir.display(),
-        test.len(),
+        data.counts.test,
         unsavable,
         100.0 * o.target_under_rate
     )?;

@@ -65,20 +65,11 @@ fn main() {
         seed: 1,
         shares: [0.1, 0.0, 0.0],
     };
-    let mut data = read_dataset(&dir, None, split).unwrap();
-    let originals: Vec<_> = data
-        .examples
-        .iter()
-        .filter(|e| e.split == Split::Train)
-        .cloned()
-        .collect();
-    let validation: Vec<_> = data
-        .examples
-        .iter()
-        .filter(|e| e.split == Split::Validation)
-        .cloned()
-        .collect();
-    data.examples = (0..samples)
+    let data = read_dataset(&dir, None, split).unwrap();
+    let all = data.collect(None).unwrap();
+    let originals: Vec<_> = all.iter().filter(|e| e.split == Split::Train).collect();
+    let validation = all.iter().filter(|e| e.split == Split::Validation).cloned();
+    let repeated = (0..samples)
         .map(|k| {
             let mut e = originals[k % originals.len()].clone();
             e.index = k as u64;
@@ -86,6 +77,7 @@ fn main() {
         })
         .chain(validation)
         .collect();
+    let data = data.with_examples(repeated);
     let n_bus = data.grid().n_buses();
     let n_branch = data.grid().branches.len();
     println!(
@@ -122,6 +114,7 @@ fn main() {
             neighbours: Some(8),
             split,
             target_under_rate: 0.05,
+            shuffle_window: TrainConfig::SHUFFLE_WINDOW,
         };
         let trained = train(&data, &config, &TrainRun::default(), &Silent).unwrap();
         let mut s = trained.step_seconds.clone();

@@ -15,7 +15,7 @@ use holdfast_infer::model::{ModelError, ModelFile};
 use holdfast_sim::label::RunSummary;
 use rayon::prelude::*;
 
-use crate::data::{Dataset, Example};
+use crate::data::{DataError, Dataset, Example, ShardExamples, Split};
 
 /// One evaluated case.
 #[derive(Clone, Debug, PartialEq)]
@@ -184,6 +184,25 @@ fn failure_cost_mw(data: &Dataset, e: &Example, shed_pu: &[f64], v: &RunSummary)
     (lost + shed_outside) * s
 }
 
+/// Errors of an evaluation.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum EvaluateError {
+    /// The model file.
+    #[error(transparent)]
+    Model(#[from] ModelError),
+    /// The dataset.
+    #[error(transparent)]
+    Data(#[from] DataError),
+}
+
+fn worker_pool(jobs: usize) -> Result<rayon::ThreadPool, ModelError> {
+    rayon::ThreadPoolBuilder::new()
+        .num_threads(jobs.max(1))
+        .build()
+        .map_err(|e| ModelError::Weights(format!("cannot start worker threads: {e}")))
+}
+
 /// Evaluates a model on the given examples; `resimulate` re-runs every case with the advised
 /// shed (in parallel on `jobs` threads), calling `tick` after each case.
 pub fn evaluate(
@@ -196,67 +215,117 @@ pub fn evaluate(
     tick: &(dyn Fn() + Sync),
 ) -> Result<Evaluation, ModelError> {
     let net = Network::new(model)?;
-    let s = data.grid().s_base_mva;
     let share = model.margin.share_of_sheddable;
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(jobs.max(1))
-        .build()
-        .map_err(|e| ModelError::Weights(format!("cannot start worker threads: {e}")))?;
-    let cases: Result<Vec<Case>, ModelError> = pool.install(|| {
-        examples
-            .par_iter()
-            .map(|e| {
-                let raw = net.predict(&e.input)?;
-                let advised = apply_margin(&raw, &e.input.sheddable_pu, share);
-                let advised_pu: f64 = advised.iter().sum();
-                let mut case = Case {
-                    index: e.index,
-                    kind: e.kind,
-                    true_mw: e.total_pu * s,
-                    raw_mw: raw.iter().sum::<f64>() * s,
-                    advised_mw: advised_pu * s,
-                    stable: None,
-                    failure: None,
-                    cost_mw: None,
-                };
-                if resimulate {
-                    if !e.needs_shed() && advised_pu <= 0.0 {
-                        // Stable without shed, as labelled: nothing to run.
-                        case.stable = Some(true);
-                        case.cost_mw = Some(0.0);
-                    } else {
-                        let shed: Vec<(BusIdx, f64)> = advised
-                            .iter()
-                            .enumerate()
-                            .filter(|(_, p)| **p > 0.0)
-                            .map(|(b, &p)| (BusIdx(b as u32), p))
-                            .collect();
-                        match data.generator.check_action(e.index, &shed) {
-                            Ok(v) => {
-                                let stable = v.failed.is_none();
-                                case.stable = Some(stable);
-                                case.cost_mw = Some(if stable {
-                                    advised_pu * s
-                                } else {
-                                    failure_cost_mw(data, e, &advised, &v)
-                                });
-                                case.failure = v.failed.as_ref().map(|f| {
-                                    format!("{f} at {}", v.failed_where.clone().unwrap_or_default())
-                                });
-                            }
-                            Err(message) => {
-                                case.failure = Some(format!("not simulated: {message}"));
-                            }
+    let cases =
+        worker_pool(jobs)?.install(|| cases_of(&net, share, data, examples, resimulate, tick))?;
+    Ok(Evaluation { cases, unsavable })
+}
+
+/// Evaluates a model on one split of a dataset (every savable sample for `None`), reading it
+/// shard by shard, so only the cases (a few numbers each) are held; otherwise as [`evaluate`].
+pub fn evaluate_split(
+    model: &ModelFile,
+    data: &Dataset,
+    split: Option<Split>,
+    resimulate: bool,
+    jobs: usize,
+    tick: &(dyn Fn() + Sync),
+) -> Result<Evaluation, EvaluateError> {
+    /// Examples handed to the worker threads at once.
+    const CHUNK: usize = 256;
+    let net = Network::new(model)?;
+    let share = model.margin.share_of_sheddable;
+    let in_split = |e: &&Example| split.is_none_or(|s| e.split == s);
+    let mut cases = Vec::new();
+    let mut held: Vec<ShardExamples> = Vec::new();
+    let mut pending = 0;
+    let mut run = |held: &mut Vec<ShardExamples>| -> Result<(), EvaluateError> {
+        let chunk: Vec<&Example> = held
+            .iter()
+            .flat_map(|s| s.iter())
+            .filter(in_split)
+            .collect();
+        cases.extend(cases_of(&net, share, data, &chunk, resimulate, tick)?);
+        held.clear();
+        Ok(())
+    };
+    worker_pool(jobs)?.install(|| {
+        data.for_each_shard(None, |shard| {
+            pending += shard.iter().filter(in_split).count();
+            held.push(std::sync::Arc::clone(shard));
+            if pending >= CHUNK {
+                pending = 0;
+                run(&mut held)?;
+            }
+            Ok::<(), EvaluateError>(())
+        })?;
+        run(&mut held)
+    })?;
+    Ok(Evaluation {
+        cases,
+        unsavable: data.unsavable_in(split),
+    })
+}
+
+/// The cases of these examples, in parallel on the current thread pool.
+fn cases_of(
+    net: &Network,
+    share: f64,
+    data: &Dataset,
+    examples: &[&Example],
+    resimulate: bool,
+    tick: &(dyn Fn() + Sync),
+) -> Result<Vec<Case>, ModelError> {
+    let s = data.grid().s_base_mva;
+    examples
+        .par_iter()
+        .map(|e| {
+            let raw = net.predict(&e.input)?;
+            let advised = apply_margin(&raw, &e.input.sheddable_pu, share);
+            let advised_pu: f64 = advised.iter().sum();
+            let mut case = Case {
+                index: e.index,
+                kind: e.kind,
+                true_mw: e.total_pu * s,
+                raw_mw: raw.iter().sum::<f64>() * s,
+                advised_mw: advised_pu * s,
+                stable: None,
+                failure: None,
+                cost_mw: None,
+            };
+            if resimulate {
+                if !e.needs_shed() && advised_pu <= 0.0 {
+                    // Stable without shed, as labelled: nothing to run.
+                    case.stable = Some(true);
+                    case.cost_mw = Some(0.0);
+                } else {
+                    let shed: Vec<(BusIdx, f64)> = advised
+                        .iter()
+                        .enumerate()
+                        .filter(|(_, p)| **p > 0.0)
+                        .map(|(b, &p)| (BusIdx(b as u32), p))
+                        .collect();
+                    match data.generator.check_action(e.index, &shed) {
+                        Ok(v) => {
+                            let stable = v.failed.is_none();
+                            case.stable = Some(stable);
+                            case.cost_mw = Some(if stable {
+                                advised_pu * s
+                            } else {
+                                failure_cost_mw(data, e, &advised, &v)
+                            });
+                            case.failure = v.failed.as_ref().map(|f| {
+                                format!("{f} at {}", v.failed_where.clone().unwrap_or_default())
+                            });
+                        }
+                        Err(message) => {
+                            case.failure = Some(format!("not simulated: {message}"));
                         }
                     }
                 }
-                tick();
-                Ok(case)
-            })
-            .collect()
-    });
-    Ok(Evaluation {
-        cases: cases?,
-        unsavable,
-    })
+            }
+            tick();
+            Ok(case)
+        })
+        .collect()
 }

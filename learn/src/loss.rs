@@ -60,19 +60,11 @@ impl Loss {
 
     /// The loss of a batch in plain arithmetic: `pred` and `target` are `[samples][buses]`.
     pub fn value(&self, pred: &[Vec<f64>], target: &[Vec<f64>]) -> f64 {
-        let mut bus = 0.0;
-        let mut n_bus = 0usize;
-        let mut total = 0.0;
+        let mut sum = LossSum::default();
         for (p, t) in pred.iter().zip(target) {
-            let mut dt = 0.0;
-            for (a, b) in p.iter().zip(t) {
-                bus += self.pointwise(b - a);
-                dt += b - a;
-                n_bus += 1;
-            }
-            total += self.pointwise(dt);
+            sum.add(self, p, t);
         }
-        bus / n_bus.max(1) as f64 + total / pred.len().max(1) as f64
+        sum.value()
     }
 
     fn tensor_term<const D: usize>(&self, d: Tensor<D>) -> Tensor<1> {
@@ -94,6 +86,35 @@ impl Loss {
         let d = target - pred;
         let total = d.clone().sum_dim(1);
         self.tensor_term(d) + self.tensor_term(total)
+    }
+}
+
+/// A loss summed one sample at a time ([`Loss::value`] of everything added), so a split that
+/// is not in memory at once can be scored.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct LossSum {
+    bus: f64,
+    buses: usize,
+    total: f64,
+    samples: usize,
+}
+
+impl LossSum {
+    /// Adds one sample's per-bus prediction and target.
+    pub fn add(&mut self, loss: &Loss, pred: &[f64], target: &[f64]) {
+        let mut dt = 0.0;
+        for (a, b) in pred.iter().zip(target) {
+            self.bus += loss.pointwise(b - a);
+            dt += b - a;
+            self.buses += 1;
+        }
+        self.total += loss.pointwise(dt);
+        self.samples += 1;
+    }
+
+    /// Mean per-bus loss plus mean per-sample total loss.
+    pub fn value(&self) -> f64 {
+        self.bus / self.buses.max(1) as f64 + self.total / self.samples.max(1) as f64
     }
 }
 

@@ -10,7 +10,7 @@ use std::collections::HashMap;
 
 use burn::prelude::*;
 use burn::tensor::activation::{relu, sigmoid};
-use holdfast_infer::features::{Csr, N_BRANCH_FEATURES, N_BUS_FEATURES};
+use holdfast_infer::features::{Csr, GraphInput, N_BRANCH_FEATURES, N_BUS_FEATURES};
 use holdfast_infer::model::{Architecture, Array, Normalisation};
 use rand::Rng;
 use rand::seq::index::sample;
@@ -36,44 +36,76 @@ pub fn init_parameters(arch: &Architecture, rng: &mut impl Rng) -> Vec<Array> {
 
 /// Per-feature mean and deviation over the nodes of the given examples.
 pub fn fit_normalisation(examples: &[&Example]) -> Normalisation {
-    fn fit(rows: impl Iterator<Item = f32>, width: usize) -> (Vec<f32>, Vec<f32>) {
-        let mut sum = vec![0.0f64; width];
-        let mut sq = vec![0.0f64; width];
-        let mut n = 0usize;
-        for (k, x) in rows.enumerate() {
-            sum[k % width] += f64::from(x);
-            sq[k % width] += f64::from(x) * f64::from(x);
-            if k % width == 0 {
-                n += 1;
-            }
-        }
-        let n = n.max(1) as f64;
-        let mean: Vec<f64> = sum.iter().map(|s| s / n).collect();
-        let std = sq
-            .iter()
-            .zip(&mean)
-            .map(|(q, m)| {
-                let v = (q / n - m * m).max(0.0).sqrt();
-                if v > 1e-6 { v as f32 } else { 1.0 }
-            })
-            .collect();
-        (mean.iter().map(|&m| m as f32).collect(), std)
+    let mut fit = NormalisationFit::default();
+    for e in examples {
+        fit.add(&e.input);
     }
-    let (bus_mean, bus_std) = fit(
-        examples.iter().flat_map(|e| e.input.bus_x.iter().copied()),
-        N_BUS_FEATURES,
-    );
-    let (branch_mean, branch_std) = fit(
-        examples
-            .iter()
-            .flat_map(|e| e.input.branch_x.iter().copied()),
-        N_BRANCH_FEATURES,
-    );
-    Normalisation {
-        bus_mean,
-        bus_std,
-        branch_mean,
-        branch_std,
+    fit.finish()
+}
+
+/// Running sums for per-feature means and deviations, fed one example at a time (a dataset's
+/// training split need not be in memory at once). Sums of values and squares in f64: features
+/// are of order one to a few thousand, far from where the difference of the sums loses digits.
+#[derive(Clone, Debug, Default)]
+pub struct NormalisationFit {
+    bus: FeatureSums,
+    branch: FeatureSums,
+}
+
+#[derive(Clone, Debug, Default)]
+struct FeatureSums {
+    sum: Vec<f64>,
+    squares: Vec<f64>,
+    rows: usize,
+}
+
+impl FeatureSums {
+    fn add(&mut self, x: &[f32], width: usize) {
+        if self.sum.is_empty() {
+            self.sum = vec![0.0; width];
+            self.squares = vec![0.0; width];
+        }
+        for row in x.chunks_exact(width) {
+            for (k, &v) in row.iter().enumerate() {
+                let v = f64::from(v);
+                self.sum[k] += v;
+                self.squares[k] += v * v;
+            }
+            self.rows += 1;
+        }
+    }
+
+    /// Means and deviations (1 where a feature does not vary).
+    fn finish(&self, width: usize) -> (Vec<f32>, Vec<f32>) {
+        let n = self.rows.max(1) as f64;
+        (0..width)
+            .map(|k| {
+                let mean = self.sum.get(k).map_or(0.0, |s| s / n);
+                let square = self.squares.get(k).map_or(0.0, |q| q / n);
+                let std = (square - mean * mean).max(0.0).sqrt();
+                (mean as f32, if std > 1e-6 { std as f32 } else { 1.0 })
+            })
+            .unzip()
+    }
+}
+
+impl NormalisationFit {
+    /// Adds one example's nodes.
+    pub fn add(&mut self, input: &GraphInput) {
+        self.bus.add(&input.bus_x, N_BUS_FEATURES);
+        self.branch.add(&input.branch_x, N_BRANCH_FEATURES);
+    }
+
+    /// The normalisation of everything added.
+    pub fn finish(&self) -> Normalisation {
+        let (bus_mean, bus_std) = self.bus.finish(N_BUS_FEATURES);
+        let (branch_mean, branch_std) = self.branch.finish(N_BRANCH_FEATURES);
+        Normalisation {
+            bus_mean,
+            bus_std,
+            branch_mean,
+            branch_std,
+        }
     }
 }
 

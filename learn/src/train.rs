@@ -3,6 +3,7 @@
 //! the split-conformal safety margin.
 
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use burn::prelude::*;
 use holdfast_core::format::{seal, unseal};
@@ -17,9 +18,9 @@ use rand::seq::SliceRandom;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::data::{Dataset, Example, Split, SplitRule};
-use crate::loss::Loss;
-use crate::net::{build_batch, fit_normalisation, forward, init_parameters, parameter_tensors};
+use crate::data::{DataError, Dataset, Example, Split, SplitRule};
+use crate::loss::{Loss, LossSum};
+use crate::net::{build_batch, forward, init_parameters, parameter_tensors};
 
 /// The training device: burn's CPU backend chosen at build time, with autodiff.
 pub fn training_device() -> Device {
@@ -58,6 +59,9 @@ pub enum TrainError {
     /// The settings cannot be used.
     #[error("{0}")]
     Settings(String),
+    /// The dataset.
+    #[error(transparent)]
+    Data(#[from] DataError),
     /// A checkpoint that cannot be used.
     #[error("{path}: {message}")]
     Checkpoint {
@@ -91,9 +95,17 @@ pub struct TrainConfig {
     pub split: SplitRule,
     /// Under-shed rate the safety margin is chosen for.
     pub target_under_rate: f64,
+    /// Training examples shuffled together: each epoch visits the shards in a shuffled order
+    /// and shuffles the examples of consecutive shards in windows of at least this many
+    /// (all of them when the training split is no larger), so memory holds one window, not
+    /// the dataset. Samples are independent draws, so a window already mixes well.
+    pub shuffle_window: usize,
 }
 
 impl TrainConfig {
+    /// The default shuffle window, examples.
+    pub const SHUFFLE_WINDOW: usize = 4096;
+
     /// Settings as `name=value` pairs, for the model file and the checkpoint.
     pub fn settings(&self) -> Vec<(String, String)> {
         vec![
@@ -110,6 +122,7 @@ impl TrainConfig {
                 "target_under_rate".into(),
                 self.target_under_rate.to_string(),
             ),
+            ("shuffle_window".into(), self.shuffle_window.to_string()),
             ("backend".into(), backend_name().into()),
         ]
     }
@@ -286,15 +299,22 @@ pub fn predict(net: &Network, examples: &[&Example]) -> Result<Vec<Vec<f64>>, Mo
     examples.iter().map(|e| net.predict(&e.input)).collect()
 }
 
-fn validation_loss(
+/// The loss of the serving forward pass over one split, read shard by shard.
+pub fn split_loss(
     loss: &Loss,
     model: &ModelFile,
-    examples: &[&Example],
-) -> Result<f64, ModelError> {
+    data: &Dataset,
+    split: Split,
+) -> Result<f64, TrainError> {
     let net = Network::new(model)?;
-    let pred = predict(&net, examples)?;
-    let target: Vec<Vec<f64>> = examples.iter().map(|e| e.target_pu.clone()).collect();
-    Ok(loss.value(&pred, &target))
+    let mut sum = LossSum::default();
+    data.for_each_shard(None, |shard| {
+        for e in shard.iter().filter(|e| e.split == split) {
+            sum.add(loss, &net.predict(&e.input)?, &e.target_pu);
+        }
+        Ok::<(), TrainError>(())
+    })?;
+    Ok(sum.value())
 }
 
 /// What a checkpoint must agree on to be resumed: every setting that shapes the epochs
@@ -310,7 +330,7 @@ fn run_key(config: &TrainConfig, data: &Dataset) -> String {
         "{shaping:?}|{}|{}|{}",
         data.manifest.study_hash,
         data.manifest.samples,
-        data.examples.len()
+        data.counts.total()
     );
     format!("{:016x}", fnv1a64(text.as_bytes()))
 }
@@ -327,13 +347,11 @@ pub fn train(
             "batch size and epochs must be at least 1".into(),
         ));
     }
-    let train_set = data.split(Split::Train);
-    let val_set = data.split(Split::Validation);
-    if train_set.is_empty() || val_set.is_empty() {
+    let counts = data.counts;
+    if counts.train == 0 || counts.validation == 0 {
         return Err(TrainError::Settings(format!(
             "{} training and {} validation samples: build a larger dataset",
-            train_set.len(),
-            val_set.len()
+            counts.train, counts.validation
         )));
     }
     let arch = &config.architecture;
@@ -385,7 +403,7 @@ pub fn train(
                     init_rng.set_stream(u64::MAX);
                     (
                         init_parameters(arch, &mut init_rng),
-                        fit_normalisation(&train_set),
+                        data.train_normalisation.clone(),
                     )
                 }
             };
@@ -414,18 +432,17 @@ pub fn train(
         // run repeats an uninterrupted one.
         let mut rng = ChaCha8Rng::seed_from_u64(config.seed);
         rng.set_stream(epoch as u64);
-        let mut order: Vec<&Example> = train_set.clone();
+        let mut order: Vec<usize> = (0..data.shard_count()).collect();
         order.shuffle(&mut rng);
-        let batches = order.len().div_ceil(config.batch);
-        progress.epoch_start(epoch, batches);
+        progress.epoch_start(epoch, counts.train.div_ceil(config.batch));
         let mut sum = 0.0;
-        for chunk in order.chunks(config.batch) {
+        let mut step = |chunk: &[&Example], rng: &mut ChaCha8Rng| {
             let batch = build_batch(
                 chunk,
                 arch,
                 &state.normalisation,
                 config.neighbours,
-                &mut rng,
+                rng,
                 &device,
             );
             let tensors = parameter_tensors(&state.params, &device, true);
@@ -445,11 +462,19 @@ pub fn train(
             state.adam.step(&mut state.params, &g, config.learning_rate);
             sum += value * chunk.len() as f64;
             progress.batch(value);
-        }
+        };
+        let mut window = ShuffleWindow::new(|e: &Example| e.split == Split::Train);
+        data.for_each_shard(Some(&order), |shard| {
+            if window.push(shard) >= config.shuffle_window {
+                window.drain(false, config.batch, &mut rng, &mut step);
+            }
+            Ok::<(), TrainError>(())
+        })?;
+        window.drain(true, config.batch, &mut rng, &mut step);
         step_seconds.push(started.elapsed().as_secs_f64());
-        let train_loss = sum / order.len() as f64;
+        let train_loss = sum / counts.train as f64;
         let current = model_file(arch, &state.normalisation, &state.params, data);
-        let val = validation_loss(&config.loss, &current, &val_set)?;
+        let val = split_loss(&config.loss, &current, data, Split::Validation)?;
         let improved = val < state.best_loss;
         if improved {
             state.best_loss = val;
@@ -470,8 +495,7 @@ pub fn train(
         }
     }
     let mut model = model_file(arch, &state.normalisation, &state.best, data);
-    let cal = data.split(Split::Calibration);
-    model.margin = calibrate(&model, &cal, config.target_under_rate)?;
+    model.margin = calibrate(&model, data, config.target_under_rate)?;
     model.training = TrainingInfo {
         dataset: data.dir.display().to_string(),
         study: data.manifest.study_name.clone(),
@@ -480,10 +504,10 @@ pub fn train(
         split_shares: config.split.shares,
         loss: config.loss.describe(),
         split_sizes: [
-            train_set.len(),
-            val_set.len(),
-            cal.len(),
-            data.split(Split::Test).len(),
+            counts.train,
+            counts.validation,
+            counts.calibration,
+            counts.test,
         ],
         seed: config.seed,
         epochs_run: state.epochs_done,
@@ -545,23 +569,87 @@ pub fn conformal_margin(mut needed: Vec<f64>, alpha: f64) -> f64 {
     }
 }
 
-/// Chooses the model's safety margin on the calibration split.
+/// Chooses the model's safety margin on the dataset's calibration split.
 pub fn calibrate(
     model: &ModelFile,
-    cal: &[&Example],
+    data: &Dataset,
     target_under_rate: f64,
-) -> Result<Margin, ModelError> {
+) -> Result<Margin, TrainError> {
     let net = Network::new(model)?;
     let mut needed = Vec::new();
-    for e in cal.iter().filter(|e| e.needs_shed()) {
-        let p = net.predict(&e.input)?;
-        needed.push(needed_margin(&p, &e.input.sheddable_pu, e.total_pu));
-    }
+    data.for_each_shard(None, |shard| {
+        for e in shard
+            .iter()
+            .filter(|e| e.split == Split::Calibration && e.needs_shed())
+        {
+            let p = net.predict(&e.input)?;
+            needed.push(needed_margin(&p, &e.input.sheddable_pu, e.total_pu));
+        }
+        Ok::<(), TrainError>(())
+    })?;
     Ok(Margin {
         share_of_sheddable: conformal_margin(needed.clone(), target_under_rate),
         target_under_rate,
         calibration_samples: needed.len(),
     })
+}
+
+/// Items of consecutive shards (the training examples), pooled until a window is full, then
+/// shuffled and cut into batches; the few left over (less than a batch) carry into the next
+/// window, so every item is handed out once per epoch and all batches but the last are full.
+struct ShuffleWindow<T> {
+    keep: fn(&T) -> bool,
+    held: Vec<Arc<Vec<T>>>,
+    carry: Vec<T>,
+    pooled: usize,
+}
+
+impl<T: Clone> ShuffleWindow<T> {
+    /// An empty window taking the items for which `keep` holds.
+    fn new(keep: fn(&T) -> bool) -> ShuffleWindow<T> {
+        ShuffleWindow {
+            keep,
+            held: Vec::new(),
+            carry: Vec::new(),
+            pooled: 0,
+        }
+    }
+
+    /// Adds a shard's items; returns how many are pooled.
+    fn push(&mut self, shard: &Arc<Vec<T>>) -> usize {
+        self.pooled += shard.iter().filter(|e| (self.keep)(e)).count();
+        self.held.push(Arc::clone(shard));
+        self.pooled
+    }
+
+    /// Shuffles the pool and hands out full batches (and the last, partial one when `last`).
+    fn drain(
+        &mut self,
+        last: bool,
+        batch: usize,
+        rng: &mut ChaCha8Rng,
+        step: &mut impl FnMut(&[&T], &mut ChaCha8Rng),
+    ) {
+        let keep = self.keep;
+        let mut pool: Vec<&T> = self
+            .carry
+            .iter()
+            .chain(self.held.iter().flat_map(|s| s.iter()).filter(|e| keep(e)))
+            .collect();
+        pool.shuffle(rng);
+        let full = if last {
+            pool.len()
+        } else {
+            pool.len() / batch * batch
+        };
+        for chunk in pool[..full].chunks(batch) {
+            step(chunk, rng);
+        }
+        let carry: Vec<T> = pool[full..].iter().map(|e| (*e).clone()).collect();
+        self.pooled = carry.len();
+        self.carry = carry;
+        self.held.clear();
+    }
 }
 
 #[cfg(test)]
@@ -587,6 +675,35 @@ mod tests {
         let m = needed_margin(&pred, &s, 0.8);
         assert!((m - 2.0 / 7.0).abs() < 1e-12, "{m}");
         assert_eq!(needed_margin(&pred, &s, 0.5), 0.0);
+    }
+
+    #[test]
+    fn the_shuffle_window_hands_out_every_item_once_in_full_batches() {
+        // Shards of 7 items, even ones kept; windows of at least 10, batches of 4.
+        let shards: Vec<Arc<Vec<u32>>> = (0..9u32)
+            .map(|s| Arc::new((0..7).map(|i| 7 * s + i).collect()))
+            .collect();
+        let mut rng = ChaCha8Rng::seed_from_u64(1);
+        let mut seen = Vec::new();
+        let mut sizes = Vec::new();
+        let mut step = |b: &[&u32], _: &mut ChaCha8Rng| {
+            sizes.push(b.len());
+            seen.extend(b.iter().map(|x| **x));
+        };
+        let mut window = ShuffleWindow::new(|x: &u32| x.is_multiple_of(2));
+        for shard in &shards {
+            if window.push(shard) >= 10 {
+                window.drain(false, 4, &mut rng, &mut step);
+            }
+        }
+        window.drain(true, 4, &mut rng, &mut step);
+        let mut sorted = seen.clone();
+        sorted.sort_unstable();
+        let expected: Vec<u32> = (0..63u32).filter(|x| x.is_multiple_of(2)).collect();
+        assert_eq!(sorted, expected, "each kept item exactly once");
+        assert_ne!(seen, expected, "shuffled");
+        // 32 items in batches of 4: eight full batches, none partial.
+        assert_eq!(sizes, vec![4; 8]);
     }
 
     #[test]

@@ -15,9 +15,10 @@ use holdfast_infer::forward::Network;
 use holdfast_infer::model::{Architecture, Array, ModelFile, Normalisation};
 use holdfast_infer::{AdvicePath, Advisor, Budget, CheckOutcome};
 use holdfast_learn::data::{
-    Dataset, Example, Split, SplitRule, disturbance_of, read_dataset, read_labelled, snapshot_of,
+    Dataset, Example, MemoryBudget, Split, SplitRule, disturbance_of, open_dataset, read_dataset,
+    read_labelled, snapshot_of,
 };
-use holdfast_learn::evaluate::{Metrics, evaluate};
+use holdfast_learn::evaluate::{Metrics, evaluate_split};
 use holdfast_learn::loss::Loss;
 use holdfast_learn::net::{
     build_batch, fit_normalisation, forward, init_parameters, parameter_tensors,
@@ -76,7 +77,13 @@ fn config(architecture: Architecture, loss: Loss, epochs: usize) -> TrainConfig 
         neighbours: Some(4),
         split: split(),
         target_under_rate: 0.1,
+        shuffle_window: TrainConfig::SHUFFLE_WINDOW,
     }
+}
+
+/// The savable examples of one split (all for `None`), in memory.
+fn examples(data: &Dataset, split: Option<Split>) -> Vec<Example> {
+    data.collect(split).unwrap()
 }
 
 fn sage() -> Architecture {
@@ -108,7 +115,7 @@ fn per_bus_sheddable_load_adds_up_to_the_labels_total() {
     })
     .unwrap();
     let s = data.grid().s_base_mva;
-    for e in &data.examples {
+    for e in &examples(&data, None) {
         let sum: f64 = e.input.sheddable_pu.iter().sum::<f64>() * s;
         assert!(
             (sum - labelled[&e.index]).abs() < 1e-6,
@@ -125,7 +132,8 @@ fn per_bus_sheddable_load_adds_up_to_the_labels_total() {
 #[test]
 fn burn_and_plain_rust_forward_passes_agree_on_100_samples() {
     let data = dataset();
-    let examples: Vec<&Example> = data.examples.iter().take(100).collect();
+    let all = examples(&data, None);
+    let examples: Vec<&Example> = all.iter().take(100).collect();
     assert_eq!(examples.len(), 100);
     let norm = fit_normalisation(&examples);
     let device = cpu_device();
@@ -165,12 +173,8 @@ fn network_gradients_match_finite_differences() {
     // Autodiff through the whole GraphSAGE network (both towers, full neighbourhoods) against
     // central differences of the loss, on a few weights of each kind.
     let data = dataset();
-    let examples: Vec<&Example> = data
-        .examples
-        .iter()
-        .filter(|e| e.needs_shed())
-        .take(16)
-        .collect();
+    let all = examples(&data, None);
+    let examples: Vec<&Example> = all.iter().filter(|e| e.needs_shed()).take(16).collect();
     let norm = fit_normalisation(&examples);
     let arch = sage();
     let loss = Loss::Averse { under_weight: 2.0 };
@@ -231,8 +235,7 @@ fn network_gradients_match_finite_differences() {
 }
 
 fn test_metrics(data: &Dataset, trained: &holdfast_learn::train::Trained) -> Metrics {
-    let test = data.split(Split::Test);
-    evaluate(&trained.model, data, &test, 0, false, 1, &|| {})
+    evaluate_split(&trained.model, data, Some(Split::Test), false, 1, &|| {})
         .unwrap()
         .overall()
 }
@@ -256,15 +259,13 @@ fn training_beats_the_mean_and_the_averse_loss_under_sheds_less() {
     .unwrap();
     // The baseline: predict the mean labelled total of the training samples that need shed.
     let s = data.grid().s_base_mva;
-    let train_shed: Vec<f64> = data
-        .split(Split::Train)
+    let train_shed: Vec<f64> = examples(&data, Some(Split::Train))
         .iter()
         .filter(|e| e.needs_shed())
         .map(|e| e.total_pu * s)
         .collect();
     let mean = train_shed.iter().sum::<f64>() / train_shed.len() as f64;
-    let val: Vec<&Example> = data
-        .split(Split::Validation)
+    let val: Vec<Example> = examples(&data, Some(Split::Validation))
         .into_iter()
         .filter(|e| e.needs_shed())
         .collect();
@@ -275,17 +276,9 @@ fn training_beats_the_mean_and_the_averse_loss_under_sheds_less() {
             .sum::<f64>()
         / val.len() as f64;
     let val_metrics = |t: &holdfast_learn::train::Trained| {
-        evaluate(
-            &t.model,
-            &data,
-            &data.split(Split::Validation),
-            0,
-            false,
-            1,
-            &|| {},
-        )
-        .unwrap()
-        .overall()
+        evaluate_split(&t.model, &data, Some(Split::Validation), false, 1, &|| {})
+            .unwrap()
+            .overall()
     };
     let (mn, ma) = (val_metrics(&neutral), val_metrics(&averse));
     let (tn, ta) = (test_metrics(&data, &neutral), test_metrics(&data, &averse));
@@ -439,8 +432,7 @@ fn the_advisor_repeats_the_evaluation_on_the_same_cases() {
         &Silent,
     )
     .unwrap();
-    let test = data.split(Split::Test);
-    let eval = evaluate(&trained.model, &data, &test, 0, true, 2, &|| {}).unwrap();
+    let eval = evaluate_split(&trained.model, &data, Some(Split::Test), true, 2, &|| {}).unwrap();
     let advisor = advisor(&trained.model, &data);
     let indices: Vec<u64> = eval.cases.iter().map(|c| c.index).collect();
     let samples = labelled_samples(&indices);
@@ -515,8 +507,7 @@ fn model_advising_nothing(data: &Dataset) -> ModelFile {
 /// Test samples that need a clear amount of shed (at least three bisection tolerances) and
 /// were labelled without non-monotone trials.
 fn clear_shed_cases(data: &Dataset, n: usize) -> Vec<Labelled> {
-    let indices: Vec<u64> = data
-        .split(Split::Test)
+    let indices: Vec<u64> = examples(data, Some(Split::Test))
         .iter()
         .filter(|e| e.needs_shed() && e.total_pu > 3.0 * e.tolerance_pu)
         .map(|e| e.index)
@@ -629,4 +620,42 @@ fn when_the_budget_runs_out_the_conservative_action_is_returned_unchecked_and_sa
         "{} vs {expected}",
         advice.total_mw
     );
+}
+
+#[test]
+fn training_from_disk_repeats_training_in_memory() {
+    // Passes visit the same examples in the same order whatever the memory budget, so a run
+    // that reads every shard from disk on every pass, one that keeps some shards, and one
+    // that keeps all of them write the same model, byte for byte. A shuffle window smaller
+    // than the training split makes each epoch several windows with carried-over examples.
+    let in_memory = dataset();
+    let cfg = TrainConfig {
+        shuffle_window: 150,
+        ..config(sage(), Loss::Averse { under_weight: 4.0 }, 3)
+    };
+    assert!(in_memory.counts.train > 2 * cfg.shuffle_window);
+    let streamed = open_dataset(dataset_dir(), None, split(), MemoryBudget::STREAM).unwrap();
+    let partly = open_dataset(
+        dataset_dir(),
+        None,
+        split(),
+        MemoryBudget {
+            cache_bytes: in_memory.kept_bytes / 2,
+        },
+    )
+    .unwrap();
+    assert_eq!(streamed.shards_kept(), 0);
+    assert!(partly.shards_kept() > 0 && partly.shards_kept() < partly.shard_count());
+    assert_eq!(in_memory.shards_kept(), in_memory.shard_count());
+    assert_eq!(streamed.counts, in_memory.counts);
+    assert_eq!(streamed.train_normalisation, in_memory.train_normalisation);
+    let model = |data: &Dataset| {
+        train(data, &cfg, &TrainRun::default(), &Silent)
+            .unwrap()
+            .model
+            .encode()
+    };
+    let reference = model(&in_memory);
+    assert_eq!(model(&streamed), reference, "read from disk");
+    assert_eq!(model(&partly), reference, "partly kept");
 }
