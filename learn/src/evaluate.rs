@@ -15,7 +15,7 @@ use holdfast_infer::model::{ModelError, ModelFile};
 use holdfast_sim::label::RunSummary;
 use rayon::prelude::*;
 
-use crate::data::{DataError, Dataset, Example, ShardExamples, Split};
+use crate::data::{DataError, Dataset, Example, Split};
 
 /// One evaluated case.
 #[derive(Clone, Debug, PartialEq)]
@@ -235,31 +235,25 @@ pub fn evaluate_split(
     const CHUNK: usize = 256;
     let net = Network::new(model)?;
     let share = model.margin.share_of_sheddable;
-    let in_split = |e: &&Example| split.is_none_or(|s| e.split == s);
     let mut cases = Vec::new();
-    let mut held: Vec<ShardExamples> = Vec::new();
-    let mut pending = 0;
-    let mut run = |held: &mut Vec<ShardExamples>| -> Result<(), EvaluateError> {
-        let chunk: Vec<&Example> = held
-            .iter()
-            .flat_map(|s| s.iter())
-            .filter(in_split)
-            .collect();
-        cases.extend(cases_of(&net, share, data, &chunk, resimulate, tick)?);
-        held.clear();
+    let mut chunk: Vec<Example> = Vec::with_capacity(CHUNK);
+    let mut run = |chunk: &mut Vec<Example>| -> Result<(), EvaluateError> {
+        let refs: Vec<&Example> = chunk.iter().collect();
+        cases.extend(cases_of(&net, share, data, &refs, resimulate, tick)?);
+        chunk.clear();
         Ok(())
     };
     worker_pool(jobs)?.install(|| {
         data.for_each_shard(None, |shard| {
-            pending += shard.iter().filter(in_split).count();
-            held.push(std::sync::Arc::clone(shard));
-            if pending >= CHUNK {
-                pending = 0;
-                run(&mut held)?;
+            for e in shard.iter().filter(|e| split.is_none_or(|s| e.split == s)) {
+                chunk.push(e.clone());
+                if chunk.len() == CHUNK {
+                    run(&mut chunk)?;
+                }
             }
             Ok::<(), EvaluateError>(())
         })?;
-        run(&mut held)
+        run(&mut chunk)
     })?;
     Ok(Evaluation {
         cases,

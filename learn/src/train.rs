@@ -3,7 +3,6 @@
 //! the split-conformal safety margin.
 
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
 
 use burn::prelude::*;
 use holdfast_core::format::{seal, unseal};
@@ -463,9 +462,10 @@ pub fn train(
             sum += value * chunk.len() as f64;
             progress.batch(value);
         };
-        let mut window = ShuffleWindow::new(|e: &Example| e.split == Split::Train);
+        let mut window = ShuffleWindow::new();
         data.for_each_shard(Some(&order), |shard| {
-            if window.push(shard) >= config.shuffle_window {
+            let train = shard.iter().filter(|e| e.split == Split::Train).cloned();
+            if window.push(train) >= config.shuffle_window {
                 window.drain(false, config.batch, &mut rng, &mut step);
             }
             Ok::<(), TrainError>(())
@@ -595,31 +595,22 @@ pub fn calibrate(
 }
 
 /// Items of consecutive shards (the training examples), pooled until a window is full, then
-/// shuffled and cut into batches; the few left over (less than a batch) carry into the next
+/// shuffled and cut into batches; the few left over (less than a batch) stay for the next
 /// window, so every item is handed out once per epoch and all batches but the last are full.
 struct ShuffleWindow<T> {
-    keep: fn(&T) -> bool,
-    held: Vec<Arc<Vec<T>>>,
-    carry: Vec<T>,
-    pooled: usize,
+    pool: Vec<T>,
 }
 
-impl<T: Clone> ShuffleWindow<T> {
-    /// An empty window taking the items for which `keep` holds.
-    fn new(keep: fn(&T) -> bool) -> ShuffleWindow<T> {
-        ShuffleWindow {
-            keep,
-            held: Vec::new(),
-            carry: Vec::new(),
-            pooled: 0,
-        }
+impl<T> ShuffleWindow<T> {
+    /// An empty window.
+    fn new() -> ShuffleWindow<T> {
+        ShuffleWindow { pool: Vec::new() }
     }
 
-    /// Adds a shard's items; returns how many are pooled.
-    fn push(&mut self, shard: &Arc<Vec<T>>) -> usize {
-        self.pooled += shard.iter().filter(|e| (self.keep)(e)).count();
-        self.held.push(Arc::clone(shard));
-        self.pooled
+    /// Adds items; returns how many are pooled.
+    fn push(&mut self, items: impl IntoIterator<Item = T>) -> usize {
+        self.pool.extend(items);
+        self.pool.len()
     }
 
     /// Shuffles the pool and hands out full batches (and the last, partial one when `last`).
@@ -630,25 +621,17 @@ impl<T: Clone> ShuffleWindow<T> {
         rng: &mut ChaCha8Rng,
         step: &mut impl FnMut(&[&T], &mut ChaCha8Rng),
     ) {
-        let keep = self.keep;
-        let mut pool: Vec<&T> = self
-            .carry
-            .iter()
-            .chain(self.held.iter().flat_map(|s| s.iter()).filter(|e| keep(e)))
-            .collect();
-        pool.shuffle(rng);
+        self.pool.shuffle(rng);
         let full = if last {
-            pool.len()
+            self.pool.len()
         } else {
-            pool.len() / batch * batch
+            self.pool.len() / batch * batch
         };
-        for chunk in pool[..full].chunks(batch) {
+        let refs: Vec<&T> = self.pool[..full].iter().collect();
+        for chunk in refs.chunks(batch) {
             step(chunk, rng);
         }
-        let carry: Vec<T> = pool[full..].iter().map(|e| (*e).clone()).collect();
-        self.pooled = carry.len();
-        self.carry = carry;
-        self.held.clear();
+        self.pool.drain(..full);
     }
 }
 
@@ -680,8 +663,8 @@ mod tests {
     #[test]
     fn the_shuffle_window_hands_out_every_item_once_in_full_batches() {
         // Shards of 7 items, even ones kept; windows of at least 10, batches of 4.
-        let shards: Vec<Arc<Vec<u32>>> = (0..9u32)
-            .map(|s| Arc::new((0..7).map(|i| 7 * s + i).collect()))
+        let shards: Vec<Vec<u32>> = (0..9u32)
+            .map(|s| (0..7).map(|i| 7 * s + i).collect())
             .collect();
         let mut rng = ChaCha8Rng::seed_from_u64(1);
         let mut seen = Vec::new();
@@ -690,9 +673,9 @@ mod tests {
             sizes.push(b.len());
             seen.extend(b.iter().map(|x| **x));
         };
-        let mut window = ShuffleWindow::new(|x: &u32| x.is_multiple_of(2));
+        let mut window = ShuffleWindow::new();
         for shard in &shards {
-            if window.push(shard) >= 10 {
+            if window.push(shard.iter().copied().filter(|x| x.is_multiple_of(2))) >= 10 {
                 window.drain(false, 4, &mut rng, &mut step);
             }
         }
