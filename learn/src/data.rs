@@ -38,6 +38,14 @@ pub enum DataError {
         /// What is wrong.
         source: FeatureError,
     },
+    /// A pass over the shards cannot go on.
+    #[error("{path}: {message}")]
+    Pass {
+        /// The dataset folder.
+        path: PathBuf,
+        /// What went wrong.
+        message: String,
+    },
     /// Nothing to train on.
     #[error("{path}: {message}")]
     Empty {
@@ -255,6 +263,8 @@ struct Shard {
     file: Option<u32>,
     /// Its savable examples, when kept in memory.
     kept: Option<Arc<Vec<Example>>>,
+    /// How many savable examples it held when the dataset was opened.
+    savable: usize,
 }
 
 /// A dataset opened for training or evaluation: its grid and study, counts per split, the
@@ -327,6 +337,7 @@ pub fn open_dataset(
             .map(|&j| Shard {
                 file: Some(j),
                 kept: None,
+                savable: 0,
             })
             .collect(),
     };
@@ -342,6 +353,7 @@ pub fn open_dataset(
                 fit.add(&e.input);
             }
         }
+        data.shards[k].savable = examples.len();
         let bytes: usize = examples.iter().map(Example::heap_bytes).sum();
         keeping &= data.kept_bytes.saturating_add(bytes) <= budget.cache_bytes;
         if keeping {
@@ -433,10 +445,25 @@ impl Dataset {
             Shard {
                 file: Some(j),
                 kept: None,
-            } => Ok(Arc::new(self.load(*j)?.0)),
+                savable,
+            } => {
+                let examples = self.load(*j)?.0;
+                if examples.len() != *savable {
+                    return Err(DataError::Pass {
+                        path: self.dir.join(shard_file_name(*j)),
+                        message: format!(
+                            "held {savable} savable samples when the dataset was opened and {} \
+                             now: the folder changed during the run; start it again",
+                            examples.len()
+                        ),
+                    });
+                }
+                Ok(Arc::new(examples))
+            }
             Shard {
                 file: None,
                 kept: None,
+                ..
             } => Ok(Arc::default()),
         }
     }
@@ -452,8 +479,9 @@ impl Dataset {
     }
 
     /// Calls `f` with the savable examples of each shard in `order` (positions in the
-    /// dataset's list; all of them in order for `None`). Shards not kept in memory are read
-    /// one ahead on a second thread. Stops at the first error, of reading or of `f`.
+    /// dataset's list, each below [`Dataset::shard_count`]; all of them in order for `None`).
+    /// Shards not kept in memory are read one ahead on a second thread. Stops at the first
+    /// error, of reading or of `f`.
     pub fn for_each_shard<E: From<DataError>>(
         &self,
         order: Option<&[usize]>,
@@ -467,6 +495,16 @@ impl Dataset {
                 &all
             }
         };
+        if let Some(&k) = order.iter().find(|&&k| k >= self.shards.len()) {
+            return Err(DataError::Pass {
+                path: self.dir.clone(),
+                message: format!(
+                    "shard position {k} asked for; the dataset has {} shards",
+                    self.shards.len()
+                ),
+            }
+            .into());
+        }
         if order.iter().all(|&k| self.shards[k].kept.is_some()) {
             for &k in order {
                 f(&self.shard(k)?)?;
@@ -487,7 +525,7 @@ impl Dataset {
                 let shard = if self.shards[k].kept.is_some() {
                     self.shard(k)?
                 } else {
-                    receive.recv().map_err(|_| DataError::Empty {
+                    receive.recv().map_err(|_| DataError::Pass {
                         path: self.dir.clone(),
                         message: "the shard reader stopped unexpectedly".into(),
                     })??
@@ -535,9 +573,11 @@ impl Dataset {
         self.shards.clear();
         let mut rest = examples.into_iter().peekable();
         while rest.peek().is_some() {
+            let examples: Vec<Example> = rest.by_ref().take(size).collect();
             self.shards.push(Shard {
                 file: None,
-                kept: Some(Arc::new(rest.by_ref().take(size).collect())),
+                savable: examples.len(),
+                kept: Some(Arc::new(examples)),
             });
         }
         self

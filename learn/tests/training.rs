@@ -659,3 +659,33 @@ fn training_from_disk_repeats_training_in_memory() {
     assert_eq!(model(&streamed), reference, "read from disk");
     assert_eq!(model(&partly), reference, "partly kept");
 }
+
+#[test]
+fn a_shard_lost_after_opening_stops_training_with_its_name() {
+    // Shards not kept in memory are read again on every pass; one that has gone since the
+    // dataset was opened is an error naming the file, not a silent gap in the epoch.
+    let dir = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("learn-demo-700-lost-shard");
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    for entry in std::fs::read_dir(dataset_dir()).unwrap() {
+        let path = entry.unwrap().path();
+        std::fs::copy(&path, dir.join(path.file_name().unwrap())).unwrap();
+    }
+    let streamed = open_dataset(&dir, None, split(), MemoryBudget::STREAM).unwrap();
+    let kept = open_dataset(&dir, None, split(), MemoryBudget::UNLIMITED).unwrap();
+    std::fs::remove_file(dir.join("shard-00001.bin")).unwrap();
+    let run = |data: &Dataset| {
+        train(
+            data,
+            &config(mlp(data), Loss::Averse { under_weight: 4.0 }, 1),
+            &TrainRun::default(),
+            &Silent,
+        )
+    };
+    let err = run(&streamed)
+        .err()
+        .expect("a lost shard must stop training");
+    assert!(err.to_string().contains("shard-00001.bin"), "{err}");
+    // Held in memory since opening, the shard is not read again.
+    assert!(run(&kept).is_ok());
+}
