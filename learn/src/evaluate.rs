@@ -203,26 +203,9 @@ fn worker_pool(jobs: usize) -> Result<rayon::ThreadPool, ModelError> {
         .map_err(|e| ModelError::Weights(format!("cannot start worker threads: {e}")))
 }
 
-/// Evaluates a model on the given examples; `resimulate` re-runs every case with the advised
-/// shed (in parallel on `jobs` threads), calling `tick` after each case.
-pub fn evaluate(
-    model: &ModelFile,
-    data: &Dataset,
-    examples: &[&Example],
-    unsavable: usize,
-    resimulate: bool,
-    jobs: usize,
-    tick: &(dyn Fn() + Sync),
-) -> Result<Evaluation, ModelError> {
-    let net = Network::new(model)?;
-    let share = model.margin.share_of_sheddable;
-    let cases =
-        worker_pool(jobs)?.install(|| cases_of(&net, share, data, examples, resimulate, tick))?;
-    Ok(Evaluation { cases, unsavable })
-}
-
 /// Evaluates a model on one split of a dataset (every savable sample for `None`), reading it
-/// shard by shard, so only the cases (a few numbers each) are held; otherwise as [`evaluate`].
+/// shard by shard, so only the cases (a few numbers each) are held. `resimulate` re-runs every
+/// case with the advised shed (in parallel on `jobs` threads), calling `tick` after each case.
 pub fn evaluate_split(
     model: &ModelFile,
     data: &Dataset,

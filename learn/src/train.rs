@@ -293,11 +293,6 @@ pub fn recheck_settings(study: &Study) -> RecheckSettings {
     }
 }
 
-/// Predictions of the serving forward pass (no margin), per example.
-pub fn predict(net: &Network, examples: &[&Example]) -> Result<Vec<Vec<f64>>, ModelError> {
-    examples.iter().map(|e| net.predict(&e.input)).collect()
-}
-
 /// The loss of the serving forward pass over one split, read shard by shard.
 pub fn split_loss(
     loss: &Loss,
@@ -587,10 +582,11 @@ pub fn calibrate(
         }
         Ok::<(), TrainError>(())
     })?;
+    let calibration_samples = needed.len();
     Ok(Margin {
-        share_of_sheddable: conformal_margin(needed.clone(), target_under_rate),
+        share_of_sheddable: conformal_margin(needed, target_under_rate),
         target_under_rate,
-        calibration_samples: needed.len(),
+        calibration_samples,
     })
 }
 
