@@ -75,6 +75,26 @@ fn train_then_evaluate_with_resimulation_and_a_plot() {
     assert!(model.is_file());
     // The checkpoint goes once the model is written.
     assert!(!dir.join("m.hfmodel.checkpoint").exists());
+    assert!(out.contains("shards held in memory"), "{out}");
+    // With nothing held in memory every pass reads the shards again: the same model.
+    let from_disk = dir.join("from-disk.hfmodel");
+    let out = ok(&[
+        "train",
+        s(data()),
+        "-o",
+        s(&from_disk),
+        "--epochs",
+        "3",
+        "--memory-mb",
+        "0",
+        "--quiet",
+    ]);
+    assert!(out.contains("0 of "), "{out}");
+    assert!(out.contains("read from disk on every pass"), "{out}");
+    assert_eq!(
+        std::fs::read(&from_disk).unwrap(),
+        std::fs::read(&model).unwrap()
+    );
 
     let plot = dir.join("eval.svg");
     let out = ok(&[
