@@ -347,12 +347,7 @@ pub fn open_dataset(
         let (examples, unsavable, unlabelled) = data.load(j)?;
         data.unsavable.extend(unsavable);
         data.unlabelled += unlabelled;
-        for e in &examples {
-            data.counts.add(e.split);
-            if e.split == Split::Train {
-                fit.add(&e.input);
-            }
-        }
+        tally(&examples, &mut data.counts, &mut fit);
         data.shards[k].savable = examples.len();
         let bytes: usize = examples.iter().map(Example::heap_bytes).sum();
         keeping &= data.kept_bytes.saturating_add(bytes) <= budget.cache_bytes;
@@ -369,6 +364,16 @@ pub fn open_dataset(
     }
     data.train_normalisation = fit.finish();
     Ok(data)
+}
+
+/// Counts examples by split and adds the training ones to the normalisation fit.
+fn tally(examples: &[Example], counts: &mut SplitCounts, fit: &mut NormalisationFit) {
+    for e in examples {
+        counts.add(e.split);
+        if e.split == Split::Train {
+            fit.add(&e.input);
+        }
+    }
 }
 
 impl Example {
@@ -560,12 +565,7 @@ impl Dataset {
         let size = (self.manifest.shard_size as usize).max(1);
         self.counts = SplitCounts::default();
         let mut fit = NormalisationFit::default();
-        for e in &examples {
-            self.counts.add(e.split);
-            if e.split == Split::Train {
-                fit.add(&e.input);
-            }
-        }
+        tally(&examples, &mut self.counts, &mut fit);
         self.train_normalisation = fit.finish();
         self.kept_bytes = examples.iter().map(Example::heap_bytes).sum();
         self.unsavable.clear();
