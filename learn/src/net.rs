@@ -44,8 +44,10 @@ pub fn fit_normalisation(examples: &[&Example]) -> Normalisation {
 }
 
 /// Running sums for per-feature means and deviations, fed one example at a time (a dataset's
-/// training split need not be in memory at once). Sums of values and squares in f64: features
-/// are of order one to a few thousand, far from where the difference of the sums loses digits.
+/// training split need not be in memory at once). Sums of values and squares in f64, as the
+/// in-memory fit did: `E[x^2] - E[x]^2` loses accuracy only for a feature whose deviation is
+/// below about 1e-5 of its mean over a million rows, which the demo features are far from;
+/// shifted sums would remove even that, at the price of every model's normalisation bits.
 #[derive(Clone, Debug, Default)]
 pub struct NormalisationFit {
     bus: FeatureSums,
