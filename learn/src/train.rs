@@ -658,7 +658,8 @@ mod tests {
 
     #[test]
     fn the_shuffle_window_hands_out_every_item_once_in_full_batches() {
-        // Shards of 7 items, even ones kept; windows of at least 10, batches of 4.
+        // Shards of 7 items, even ones kept; windows of at least 10, batches of 4. Reference:
+        // counting by hand (32 even numbers below 63 = 8 batches of 4); no outside source.
         let shards: Vec<Vec<u32>> = (0..9u32)
             .map(|s| (0..7).map(|i| 7 * s + i).collect())
             .collect();

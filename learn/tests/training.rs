@@ -628,6 +628,7 @@ fn training_from_disk_repeats_training_in_memory() {
     // that reads every shard from disk on every pass, one that keeps some shards, and one
     // that keeps all of them write the same model, byte for byte. A shuffle window smaller
     // than the training split makes each epoch several windows with carried-over examples.
+    // Reference: the in-memory run itself (common practice, no single source).
     let in_memory = dataset();
     let cfg = TrainConfig {
         shuffle_window: 150,
@@ -664,6 +665,7 @@ fn training_from_disk_repeats_training_in_memory() {
 fn a_shard_lost_after_opening_stops_training_with_its_name() {
     // Shards not kept in memory are read again on every pass; one that has gone since the
     // dataset was opened is an error naming the file, not a silent gap in the epoch.
+    // (House rule on bad input; common practice, no single source.)
     let dir = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("learn-demo-700-lost-shard");
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(&dir).unwrap();
