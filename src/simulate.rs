@@ -8,8 +8,8 @@ use std::time::Instant;
 use anyhow::{Context, Result, bail};
 use holdfast_core::Grid;
 use holdfast_core::dynamics::{
-    Event, MachineModelChoice, Scenario, SimulationOptions, SimulationResult, StabilityCriteria,
-    Trajectory, parse_event_line, read_scenario, simulate,
+    Event, MIN_DAMPING_WINDOW_S, MachineModelChoice, Scenario, SimulationOptions, SimulationResult,
+    StabilityCriteria, Trajectory, Trip, parse_event_line, read_scenario, simulate,
 };
 use holdfast_core::powerflow::solve;
 use serde::Serialize;
@@ -54,29 +54,93 @@ pub(crate) struct SimulateArgs {
     /// Print the verdict as JSON.
     #[arg(long)]
     pub(crate) json: bool,
+    /// Change one stability criterion (repeatable), by the name it has in a study's
+    /// [criteria] table: e.g. "min_damping_ratio=0.05", "over_voltage_pu=1.25",
+    /// "final_voltage_min_pu=0.92". Default: the criteria for the grid's frequency.
+    #[arg(long = "criterion", value_name = "NAME=VALUE")]
+    pub(crate) criteria: Vec<String>,
 }
 
-/// The verdict in JSON (`holdfast simulate --json`).
+/// The verdict in JSON (`holdfast simulate --json`). A margin the run did not reach is null.
 #[derive(Serialize)]
 struct VerdictReport {
     stable: bool,
     failed_criterion: Option<String>,
     failed_at_s: Option<f64>,
     failed_where: Option<String>,
+    failed_value: Option<f64>,
     max_angle_deg: f64,
-    min_voltage_after_clearing: f64,
+    min_voltage_after_clearing: Option<f64>,
     slowest_recovery_s: Option<f64>,
+    max_voltage_pu: Option<f64>,
+    longest_over_voltage_s: f64,
+    longest_sustained_over_voltage_s: f64,
     nadir_hz: f64,
     zenith_hz: f64,
-    final_frequency_hz: f64,
+    final_frequency_hz: Option<f64>,
+    final_voltage_min_pu: Option<f64>,
+    final_voltage_max_pu: Option<f64>,
+    damping: Option<DampingReport>,
     end_time_s: f64,
     stopped_early: bool,
-    wind_trips: Vec<String>,
-    motor_trips: Vec<String>,
+    wind_trips: Vec<TripReport>,
+    motor_trips: Vec<TripReport>,
     steps: usize,
     newton_iterations: usize,
     factorisations: usize,
     wall_ms: f64,
+}
+
+/// The damping analysis in JSON.
+#[derive(Serialize)]
+struct DampingReport {
+    window_start_s: f64,
+    window_end_s: f64,
+    modes_above_floor: usize,
+    worst_mode: Option<ModeReport>,
+}
+
+/// The least damped mode in JSON.
+#[derive(Serialize)]
+struct ModeReport {
+    frequency_hz: f64,
+    damping_ratio: f64,
+    amplitude_over_floor: f64,
+    location: String,
+}
+
+/// A ride-through or under-voltage trip in JSON.
+#[derive(Serialize)]
+struct TripReport {
+    id: String,
+    time_s: f64,
+    cause: String,
+}
+
+/// The criteria for `grid`, changed by `--criterion NAME=VALUE` arguments.
+fn criteria(grid: &Grid, given: &[String]) -> Result<StabilityCriteria> {
+    let mut c = StabilityCriteria::for_frequency(grid.frequency_hz);
+    for arg in given {
+        let (name, value) = arg
+            .split_once('=')
+            .with_context(|| format!("--criterion \"{arg}\": give NAME=VALUE"))?;
+        let value: f64 = value.trim().parse().with_context(|| {
+            format!(
+                "--criterion \"{arg}\": the value \"{}\" is not a number",
+                value.trim()
+            )
+        })?;
+        c.set_field(name.trim(), value, grid.frequency_hz)
+            .with_context(|| format!("--criterion \"{arg}\""))?;
+    }
+    if c.final_voltage_min_pu >= c.final_voltage_max_pu {
+        bail!(
+            "--criterion: final_voltage_min_pu = {} must be below final_voltage_max_pu = {}",
+            c.final_voltage_min_pu,
+            c.final_voltage_max_pu
+        );
+    }
+    Ok(c)
 }
 
 pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
@@ -113,6 +177,7 @@ pub(crate) fn run(args: &SimulateArgs, out: &mut impl Write) -> Result<()> {
         },
         early_stop: !args.full_run,
         record: args.out.is_some() || args.plot.is_some(),
+        criteria: Some(criteria(&grid, &args.criteria)?),
         ..SimulationOptions::default()
     };
     let chosen: Vec<usize> = args
@@ -254,60 +319,140 @@ fn text(
         )?,
     }
     let m = &v.margins;
-    writeln!(out, "Margins:")?;
-    writeln!(
-        out,
-        "  largest rotor angle from centre of inertia  {:>8.1} deg   (limit {:.0})",
-        m.max_angle_deg, c.max_angle_deg
-    )?;
-    if m.min_voltage_after_clearing.is_finite() {
-        writeln!(
-            out,
-            "  lowest load-bus voltage after the event     {:>8.3} of pre-contingency (recover to {:.2} within {:.1} s, floor {:.2})",
-            m.min_voltage_after_clearing, c.recovery_level, c.recovery_time_s, c.floor_level
-        )?;
-        writeln!(
-            out,
-            "  slowest recovery above {:.2}                 {:>8}",
-            c.recovery_level,
-            if m.slowest_recovery_s.is_finite() {
-                format!("{:.3} s", m.slowest_recovery_s)
-            } else {
-                "never".to_string()
-            }
-        )?;
+    let not_reached = || format!("not reached (the run stopped at {:.3} s)", v.end_time_s);
+    let mut rows: Vec<(String, String)> = vec![(
+        "largest rotor angle from centre of inertia".into(),
+        format!("{:.1} deg (limit {:.0})", m.max_angle_deg, c.max_angle_deg),
+    )];
+    if let Some(lowest) = m.min_voltage_after_clearing {
+        rows.push((
+            "lowest load-bus voltage after the event".into(),
+            format!(
+                "{lowest:.3} of pre-contingency (recover to {:.2} within {:.1} s, floor {:.2})",
+                c.recovery_level, c.recovery_time_s, c.floor_level
+            ),
+        ));
+        rows.push((
+            format!("slowest recovery above {:.2}", c.recovery_level),
+            match m.slowest_recovery_s {
+                Some(s) => format!("{s:.3} s"),
+                None if v.stopped_early => not_reached(),
+                None => "never".to_string(),
+            },
+        ));
     }
-    writeln!(
-        out,
-        "  frequency nadir / zenith                    {:>8.3} / {:.3} Hz (limits {:.2} / {:.2})",
-        m.nadir_hz, m.zenith_hz, c.nadir_hz, c.zenith_hz
-    )?;
-    writeln!(
-        out,
-        "  final frequency                             {:>8.3} Hz   (band +/-{:.2} Hz)",
-        m.final_frequency_hz, c.final_band_hz
-    )?;
-    let list = |trips: &[(String, f64)]| {
+    if let Some(highest) = m.max_voltage_pu {
+        rows.push((
+            "highest load-bus voltage after the event".into(),
+            format!(
+                "{highest:.3} pu (at most {:.2} s above {:.2}, {:.1} s above {:.2})",
+                c.over_voltage_time_s,
+                c.over_voltage_pu,
+                c.sustained_over_voltage_time_s,
+                c.sustained_over_voltage_pu
+            ),
+        ));
+        rows.push((
+            format!(
+                "longest time above {:.2} / {:.2} pu",
+                c.over_voltage_pu, c.sustained_over_voltage_pu
+            ),
+            format!(
+                "{:.3} / {:.3} s",
+                m.longest_over_voltage_s, m.longest_sustained_over_voltage_s
+            ),
+        ));
+    }
+    rows.push((
+        "frequency nadir / zenith".into(),
+        format!(
+            "{:.3} / {:.3} Hz (limits {:.2} / {:.2}){}",
+            m.nadir_hz,
+            m.zenith_hz,
+            c.nadir_hz,
+            c.zenith_hz,
+            if v.stopped_early {
+                format!(", up to {:.3} s", v.end_time_s)
+            } else {
+                String::new()
+            }
+        ),
+    ));
+    rows.push((
+        "final frequency".into(),
+        match m.final_frequency_hz {
+            Some(f) => format!("{f:.3} Hz (band +/-{:.2} Hz)", c.final_band_hz),
+            None => not_reached(),
+        },
+    ));
+    rows.push((
+        "final load-bus voltages".into(),
+        match (m.final_voltage_min_pu, m.final_voltage_max_pu) {
+            (Some(lo), Some(hi)) => format!(
+                "{lo:.3} to {hi:.3} pu (band {:.2} to {:.2})",
+                c.final_voltage_min_pu, c.final_voltage_max_pu
+            ),
+            _ if v.stopped_early => not_reached(),
+            _ => "no load bus".to_string(),
+        },
+    ));
+    rows.push((
+        "damping of oscillations".into(),
+        match &m.damping {
+            Some(d) => match &d.worst {
+                Some(w) => format!(
+                    "least damped {:.2} Hz at {}: damping ratio {:.3} (minimum {:.3}), \
+                     {:.1}x its amplitude floor; {} mode(s) above their floor, {:.1}-{:.1} s",
+                    w.frequency_hz,
+                    w.location,
+                    w.damping_ratio,
+                    c.min_damping_ratio,
+                    w.amplitude_over_floor,
+                    d.modes_above_floor,
+                    d.window_start_s,
+                    d.window_end_s
+                ),
+                None => format!(
+                    "no mode above its floor ({:.1} deg, {:.3} pu), {:.1}-{:.1} s",
+                    c.damping_angle_floor_deg,
+                    c.damping_voltage_floor_pu,
+                    d.window_start_s,
+                    d.window_end_s
+                ),
+            },
+            None if v.stopped_early => not_reached(),
+            None if c.damping_window_s <= 0.0 => "not judged (damping_window_s = 0)".to_string(),
+            None => format!(
+                "not judged: less than {MIN_DAMPING_WINDOW_S:.1} s after the last event in \
+                 the last {:.1} s",
+                c.damping_window_s
+            ),
+        },
+    ));
+    let list = |trips: &[Trip]| {
         if trips.is_empty() {
             "none".to_string()
         } else {
             trips
                 .iter()
-                .map(|(id, t)| format!("\"{id}\" at {t:.3} s"))
+                .map(|t| format!("\"{}\" at {:.3} s ({})", t.id, t.time_s, t.cause))
                 .collect::<Vec<_>>()
                 .join(", ")
         }
     };
-    writeln!(
-        out,
-        "  wind plants tripped on ride-through: {}",
-        list(&v.wind_trips)
-    )?;
-    writeln!(
-        out,
-        "  motor shares tripped on under-voltage: {}",
-        list(&v.motor_trips)
-    )?;
+    rows.push((
+        "wind plants tripped on ride-through".into(),
+        list(&v.wind_trips),
+    ));
+    rows.push((
+        "motor shares tripped on under-voltage".into(),
+        list(&v.motor_trips),
+    ));
+    writeln!(out, "Margins:")?;
+    let width = rows.iter().map(|(label, _)| label.len()).max().unwrap_or(0);
+    for (label, value) in &rows {
+        writeln!(out, "  {label:<width$}  {value}")?;
+    }
     let s = &result.stats;
     writeln!(
         out,
@@ -320,24 +465,52 @@ fn text(
 fn json(result: &SimulationResult, wall_ms: f64) -> VerdictReport {
     let v = &result.verdict;
     let m = &v.margins;
+    let trips = |trips: &[Trip]| {
+        trips
+            .iter()
+            .map(|t| TripReport {
+                id: t.id.clone(),
+                time_s: t.time_s,
+                cause: t.cause.to_string(),
+            })
+            .collect()
+    };
     VerdictReport {
         stable: v.is_stable(),
         failed_criterion: v.failure.as_ref().map(|f| f.criterion.to_string()),
         failed_at_s: v.failure.as_ref().map(|f| f.time_s),
         failed_where: v.failure.as_ref().map(|f| f.location.clone()),
+        failed_value: v
+            .failure
+            .as_ref()
+            .map(|f| f.value)
+            .filter(|x| x.is_finite()),
         max_angle_deg: m.max_angle_deg,
         min_voltage_after_clearing: m.min_voltage_after_clearing,
-        slowest_recovery_s: m
-            .slowest_recovery_s
-            .is_finite()
-            .then_some(m.slowest_recovery_s),
+        slowest_recovery_s: m.slowest_recovery_s,
+        max_voltage_pu: m.max_voltage_pu,
+        longest_over_voltage_s: m.longest_over_voltage_s,
+        longest_sustained_over_voltage_s: m.longest_sustained_over_voltage_s,
         nadir_hz: m.nadir_hz,
         zenith_hz: m.zenith_hz,
         final_frequency_hz: m.final_frequency_hz,
+        final_voltage_min_pu: m.final_voltage_min_pu,
+        final_voltage_max_pu: m.final_voltage_max_pu,
+        damping: m.damping.as_ref().map(|d| DampingReport {
+            window_start_s: d.window_start_s,
+            window_end_s: d.window_end_s,
+            modes_above_floor: d.modes_above_floor,
+            worst_mode: d.worst.as_ref().map(|w| ModeReport {
+                frequency_hz: w.frequency_hz,
+                damping_ratio: w.damping_ratio,
+                amplitude_over_floor: w.amplitude_over_floor,
+                location: w.location.clone(),
+            }),
+        }),
         end_time_s: v.end_time_s,
         stopped_early: v.stopped_early,
-        wind_trips: v.wind_trips.iter().map(|(id, _)| id.clone()).collect(),
-        motor_trips: v.motor_trips.iter().map(|(id, _)| id.clone()).collect(),
+        wind_trips: trips(&v.wind_trips),
+        motor_trips: trips(&v.motor_trips),
         steps: result.stats.steps,
         newton_iterations: result.stats.iterations,
         factorisations: result.stats.factorisations,

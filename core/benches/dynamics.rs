@@ -75,6 +75,7 @@ fn give_dynamics(mut grid: Grid) -> Grid {
             td0_transient_s: 7.0,
             tq0_transient_s: 0.7,
             subtransient: None,
+            saturation: None,
         });
         m.exciter = Some(static_exciter());
     }
@@ -89,6 +90,8 @@ fn static_exciter() -> ExciterData {
         t_lag_s: 10.0,
         gain: 200.0,
         t_amplifier_s: 0.02,
+        amplifier_max_pu: 6.0,
+        amplifier_min_pu: -5.0,
         field_max_pu: 6.0,
         field_min_pu: -5.0,
     }

@@ -407,6 +407,7 @@ fn build(
                 rating_mva: s_base,
                 dynamics: None,
                 exciter: None,
+                stabiliser: None,
                 governor: None,
                 in_service: true,
             });

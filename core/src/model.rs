@@ -394,8 +394,12 @@ pub struct UnderVoltageTrip {
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub enum ExciterData {
     /// Bus-fed static exciter of the IEEE 421.5 ST1A type, simplified: voltage transducer, a
-    /// lead-lag (transient gain reduction) and a high-gain amplifier whose ceiling scales with
-    /// the terminal voltage.
+    /// lead-lag (transient gain reduction) and a high-gain amplifier, with the standard's two
+    /// kinds of limit: the amplifier's own range (non-windup: its state stops at the limit and
+    /// leaves it as soon as its input turns back) and the bridge ceiling and floor, which scale
+    /// with the terminal voltage (windup: the output is clipped, the amplifier behind it is
+    /// not). Left out: the input limits, the second lead-lag, rate feedback, the commutation
+    /// drop `K_C I_FD` and the field-current limiter.
     St1a {
         /// Voltage transducer time constant, s (0: none).
         t_measure_s: f64,
@@ -405,14 +409,20 @@ pub enum ExciterData {
         t_lag_s: f64,
         /// Amplifier gain, pu/pu.
         gain: f64,
-        /// Amplifier time constant, s.
+        /// Amplifier time constant, s (0: the amplifier is algebraic, its output the gain
+        /// times its input within its range).
         t_amplifier_s: f64,
-        /// Ceiling, pu of terminal voltage (output at most `v_t * field_max_pu`).
+        /// Upper limit of the amplifier's range, pu (non-windup).
+        amplifier_max_pu: f64,
+        /// Lower limit of the amplifier's range, pu (non-windup).
+        amplifier_min_pu: f64,
+        /// Ceiling, pu of terminal voltage (output at most `v_t * field_max_pu`; windup).
         field_max_pu: f64,
-        /// Floor, pu of terminal voltage (output at least `v_t * field_min_pu`).
+        /// Floor, pu of terminal voltage (output at least `v_t * field_min_pu`; windup).
         field_min_pu: f64,
     },
-    /// A simple first-order exciter: gain and time constant with fixed output limits.
+    /// A simple first-order exciter (our own type, not one of IEEE 421.5's): gain and time
+    /// constant, its state held within fixed non-windup limits.
     FirstOrder {
         /// Voltage transducer time constant, s (0: none).
         t_measure_s: f64,
@@ -425,6 +435,51 @@ pub enum ExciterData {
         /// Lower output limit, pu.
         field_min_pu: f64,
     },
+}
+
+/// A power system stabiliser of the IEEE 421.5 single-input type (PSS1A): the rotor speed
+/// deviation through a transducer lag, a gain with a washout, two lead-lags and output limits
+/// (windup), added to the exciter's input. The torsional filter of the standard is left out.
+/// Parameter names are our own.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct StabiliserData {
+    /// Gain, pu of exciter input per pu speed deviation.
+    pub gain: f64,
+    /// Transducer time constant, s (0: none).
+    pub t_transducer_s: f64,
+    /// Washout time constant, s.
+    pub t_washout_s: f64,
+    /// First lead time constant, s.
+    pub t_lead_1_s: f64,
+    /// First lag time constant, s (0: no first stage).
+    pub t_lag_1_s: f64,
+    /// Second lead time constant, s.
+    pub t_lead_2_s: f64,
+    /// Second lag time constant, s (0: no second stage).
+    pub t_lag_2_s: f64,
+    /// Upper output limit, pu.
+    pub output_max_pu: f64,
+    /// Lower output limit, pu.
+    pub output_min_pu: f64,
+}
+
+/// Open-circuit saturation of a synchronous machine, given by two points of its open-circuit
+/// curve: the factor `S(v) = (I_field - I_field on the air-gap line) / (I_field on the air-gap
+/// line)` at 1.0 and 1.2 pu terminal voltage. Between and beyond them `S` follows the
+/// exponential through both points (DOMAIN.md 2.2), applied to the d axis.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Saturation {
+    /// `S(1.0)`. Dimensionless, positive.
+    pub at_1_0: f64,
+    /// `S(1.2)`. Dimensionless, above `at_1_0`.
+    pub at_1_2: f64,
+}
+
+impl Saturation {
+    /// The saturation factor at flux (voltage behind the leakage reactance) `psi_pu`.
+    pub fn factor(&self, psi_pu: f64) -> f64 {
+        self.at_1_0 * (self.at_1_2 / self.at_1_0).powf((psi_pu - 1.0) / 0.2)
+    }
 }
 
 /// Speed-droop turbine-governor: a valve lag with non-windup limits and an optional reheat
@@ -445,13 +500,14 @@ pub struct GovernorData {
     pub valve_min_pu: f64,
 }
 
-/// One point of a low-voltage ride-through curve: the plant may trip once its voltage has
-/// stayed below `v_pu` for longer than `t_s`.
+/// One point of a ride-through curve: on a low-voltage curve the plant may trip once its
+/// voltage has stayed below `v_pu` for longer than `t_s`; on a high-voltage curve, once it has
+/// stayed above.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct RideThroughPoint {
     /// Voltage, pu.
     pub v_pu: f64,
-    /// Longest time below that voltage without tripping, s.
+    /// Longest time beyond that voltage without tripping, s.
     pub t_s: f64,
 }
 
@@ -474,6 +530,28 @@ pub const DEFAULT_RIDE_THROUGH: [RideThroughPoint; 4] = [
     RideThroughPoint {
         v_pu: 0.90,
         t_s: 3.0,
+    },
+];
+
+/// The high-voltage no-trip envelope of NERC PRC-024-2 Attachment 2 (as tabulated in DOMAIN
+/// notes; verify against the edition in force): above 1.20 pu the plant may trip at once, above
+/// 1.175 pu after 0.2 s, above 1.15 pu after 0.5 s and above 1.10 pu after 1 s.
+pub const DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH: [RideThroughPoint; 4] = [
+    RideThroughPoint {
+        v_pu: 1.20,
+        t_s: 0.0,
+    },
+    RideThroughPoint {
+        v_pu: 1.175,
+        t_s: 0.2,
+    },
+    RideThroughPoint {
+        v_pu: 1.15,
+        t_s: 0.5,
+    },
+    RideThroughPoint {
+        v_pu: 1.10,
+        t_s: 1.0,
     },
 ];
 
@@ -504,6 +582,8 @@ pub struct MachineDynamics {
     pub tq0_transient_s: f64,
     /// Sub-transient data, when the data set has them (many published sets do not).
     pub subtransient: Option<SubtransientData>,
+    /// Open-circuit saturation (two-axis and sub-transient models); `None`: unsaturated.
+    pub saturation: Option<Saturation>,
 }
 
 /// Sub-transient data of a synchronous machine, per unit on its rating.
@@ -546,6 +626,8 @@ pub struct SyncMachine {
     pub dynamics: Option<MachineDynamics>,
     /// Excitation system, if modelled (else constant field voltage).
     pub exciter: Option<ExciterData>,
+    /// Power system stabiliser feeding the exciter, if fitted.
+    pub stabiliser: Option<StabiliserData>,
     /// Turbine-governor, if modelled (else constant mechanical power).
     pub governor: Option<GovernorData>,
     /// In service in the base case.
@@ -565,8 +647,12 @@ pub struct WindDynamics {
     pub t_current_s: f64,
     /// Active-current recovery rate after a fault, pu/s.
     pub p_recovery_pu_per_s: f64,
-    /// Low-voltage ride-through curve (see [`DEFAULT_RIDE_THROUGH`]); empty: never trips.
+    /// Low-voltage ride-through curve (see [`DEFAULT_RIDE_THROUGH`]); empty: never trips on
+    /// low voltage.
     pub ride_through: Vec<RideThroughPoint>,
+    /// High-voltage ride-through curve (see [`DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH`]); empty:
+    /// never trips on high voltage.
+    pub high_voltage_ride_through: Vec<RideThroughPoint>,
 }
 
 /// A full-converter wind plant (aggregated) at a bus. It injects fixed P and Q in the power flow.

@@ -93,6 +93,7 @@ pub fn meshed_grid(n_buses: usize, seed: u64) -> Grid {
                 rating_mva: 400.0,
                 dynamics: None,
                 exciter: None,
+                stabiliser: None,
                 governor: None,
                 in_service: true,
             });

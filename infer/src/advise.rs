@@ -31,8 +31,8 @@ use std::path::Path;
 use std::time::{Duration, Instant};
 
 use holdfast_core::dynamics::{
-    Criterion, Event, Failure, Scenario, Simulation, SimulationOptions, SimulationResult,
-    TimedEvent, Verdict, contingency_events, simulate,
+    Event, Failure, Scenario, Simulation, SimulationOptions, SimulationResult, TimedEvent, Verdict,
+    contingency_events, simulate,
 };
 use holdfast_core::format::{grid_fingerprint, load_grid};
 use holdfast_core::powerflow::{PowerFlowOptions, PowerFlowSolution, solve_from};
@@ -1062,7 +1062,7 @@ impl Recheck<'_> {
             nadir_hz: verdict.as_ref().map(|v| v.margins.nadir_hz),
             min_voltage_share: verdict
                 .as_ref()
-                .map(|v| v.margins.min_voltage_after_clearing),
+                .and_then(|v| v.margins.min_voltage_after_clearing),
             ms: millis(t.elapsed()),
         });
         (outcome, direction)
@@ -1074,16 +1074,17 @@ impl Recheck<'_> {
 enum Direction {
     /// Too little shed: frequency too low, voltage or angle failures.
     TooLittle,
-    /// Too much shed: frequency rose above its ceiling, or ended above its band.
+    /// Too much shed: frequency rose above its ceiling or ended above its band, or voltages
+    /// rose too high.
     TooMuch,
 }
 
 impl Direction {
     fn of(f: &Failure, nominal_hz: f64) -> Direction {
-        match f.criterion {
-            Criterion::FrequencyZenith => Direction::TooMuch,
-            Criterion::FrequencyFinal if f.value > nominal_hz => Direction::TooMuch,
-            _ => Direction::TooLittle,
+        if f.criterion.points_to_over_shed(f.value, nominal_hz) {
+            Direction::TooMuch
+        } else {
+            Direction::TooLittle
         }
     }
 }

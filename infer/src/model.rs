@@ -13,7 +13,8 @@
 //! what training did, and the settings the advisor re-checks an action with (copied from the
 //! study the training labels came from). Files are written to a temporary name and renamed.
 //!
-//! Layout history: version 1 had no re-check settings; version 2 adds them.
+//! Layout history: version 1 had no re-check settings; version 2 adds them; version 3 carries
+//! the over-voltage, final-voltage and damping criteria in those settings.
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -26,7 +27,7 @@ use serde::{Deserialize, Serialize};
 use crate::features::{BRANCH_FEATURES, BUS_FEATURES, FEATURE_SET_VERSION};
 
 /// Model-file layout version written by this build.
-pub const MODEL_FORMAT_VERSION: u32 = 2;
+pub const MODEL_FORMAT_VERSION: u32 = 3;
 const MAGIC: &[u8; 8] = b"HFMODEL1";
 
 /// Errors of model files and weights, each naming the file or the array.
@@ -566,7 +567,7 @@ mod tests {
         let e = ModelFile::decode(&m.encode(), Path::new("m")).unwrap_err();
         assert_eq!(
             e.to_string(),
-            "m: model file layout version 99; this build reads version 2"
+            "m: model file layout version 99; this build reads version 3"
         );
         let mut m = small_model();
         m.bus_features.swap(0, 1);

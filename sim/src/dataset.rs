@@ -24,8 +24,10 @@ use crate::contingency::Contingency;
 use crate::label::Label;
 use crate::sampling::{Draw, OperatingPoint, Rejection};
 
-/// Shard layout version written by this build.
-pub const SHARD_FORMAT_VERSION: u32 = 1;
+/// Shard layout version written by this build. Version 2: run summaries hold the
+/// over-voltage, final-voltage and damping margins, and margins a run did not reach are absent
+/// (version 1 wrote nominal values there); datasets of version 1 must be labelled again.
+pub const SHARD_FORMAT_VERSION: u32 = 2;
 const MAGIC: &[u8; 8] = b"HFSHARD1";
 
 /// Errors of dataset files. Each names the file and says how to fix it.

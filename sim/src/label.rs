@@ -34,7 +34,8 @@ pub struct Trial {
     pub stable: bool,
 }
 
-/// The verdict of a run, as stored.
+/// The verdict of a run, as stored: the failure and the margins (`None`: not reached by the
+/// run; see [`holdfast_core::dynamics::Margins`]).
 #[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct RunSummary {
     /// The failed criterion, if any (its display name).
@@ -46,28 +47,45 @@ pub struct RunSummary {
     /// Largest rotor-angle separation from the centre of inertia, degrees.
     pub max_angle_deg: f64,
     /// Lowest load-bus voltage after clearing, share of pre-contingency.
-    pub min_voltage_share: f64,
+    pub min_voltage_share: Option<f64>,
+    /// Highest load-bus voltage after the first event, pu.
+    pub max_voltage_pu: Option<f64>,
     /// Frequency nadir, Hz.
     pub nadir_hz: f64,
     /// Frequency zenith, Hz.
     pub zenith_hz: f64,
-    /// Frequency at the end, Hz.
-    pub final_frequency_hz: f64,
+    /// Frequency at the end of the window, Hz.
+    pub final_frequency_hz: Option<f64>,
+    /// Lowest load-bus voltage at the end of the window, pu.
+    pub final_voltage_min_pu: Option<f64>,
+    /// Highest load-bus voltage at the end of the window, pu.
+    pub final_voltage_max_pu: Option<f64>,
+    /// Frequency of the least damped oscillation mode above its floor, Hz.
+    pub worst_mode_hz: Option<f64>,
+    /// Damping ratio of that mode. Dimensionless.
+    pub worst_mode_damping: Option<f64>,
     /// End of the run, s.
     pub end_time_s: f64,
 }
 
 impl From<&Verdict> for RunSummary {
     fn from(v: &Verdict) -> Self {
+        let m = &v.margins;
+        let worst = m.damping.as_ref().and_then(|d| d.worst.as_ref());
         RunSummary {
             failed: v.failure.as_ref().map(|f| f.criterion.to_string()),
             failed_at_s: v.failure.as_ref().map(|f| f.time_s),
             failed_where: v.failure.as_ref().map(|f| f.location.clone()),
-            max_angle_deg: v.margins.max_angle_deg,
-            min_voltage_share: v.margins.min_voltage_after_clearing,
-            nadir_hz: v.margins.nadir_hz,
-            zenith_hz: v.margins.zenith_hz,
-            final_frequency_hz: v.margins.final_frequency_hz,
+            max_angle_deg: m.max_angle_deg,
+            min_voltage_share: m.min_voltage_after_clearing,
+            max_voltage_pu: m.max_voltage_pu,
+            nadir_hz: m.nadir_hz,
+            zenith_hz: m.zenith_hz,
+            final_frequency_hz: m.final_frequency_hz,
+            final_voltage_min_pu: m.final_voltage_min_pu,
+            final_voltage_max_pu: m.final_voltage_max_pu,
+            worst_mode_hz: worst.map(|w| w.frequency_hz),
+            worst_mode_damping: worst.map(|w| w.damping_ratio),
             end_time_s: v.end_time_s,
         }
     }
@@ -341,14 +359,7 @@ mod tests {
                 location: "test".into(),
                 value: 0.0,
             }),
-            margins: Margins {
-                max_angle_deg: 0.0,
-                min_voltage_after_clearing: 1.0,
-                slowest_recovery_s: 0.0,
-                nadir_hz: 60.0,
-                zenith_hz: 60.0,
-                final_frequency_hz: 60.0,
-            },
+            margins: Margins::at_start(60.0),
             end_time_s: 10.0,
             stopped_early: false,
             wind_trips: Vec::new(),

@@ -716,6 +716,7 @@ impl Default for SheddingIn {
     }
 }
 
+/// The `[criteria]` table: one optional field per [`StabilityCriteria::FIELDS`] entry.
 #[derive(Deserialize, Default)]
 #[serde(deny_unknown_fields)]
 struct CriteriaIn {
@@ -728,6 +729,16 @@ struct CriteriaIn {
     nadir_hz: Option<Num>,
     zenith_hz: Option<Num>,
     final_band_hz: Option<Num>,
+    over_voltage_pu: Option<Num>,
+    over_voltage_time_s: Option<Num>,
+    sustained_over_voltage_pu: Option<Num>,
+    sustained_over_voltage_time_s: Option<Num>,
+    final_voltage_min_pu: Option<Num>,
+    final_voltage_max_pu: Option<Num>,
+    min_damping_ratio: Option<Num>,
+    damping_window_s: Option<Num>,
+    damping_angle_floor_deg: Option<Num>,
+    damping_voltage_floor_pu: Option<Num>,
 }
 
 impl CriteriaIn {
@@ -755,63 +766,49 @@ impl CriteriaIn {
             );
         }
         let mut out = StabilityCriteria::for_frequency(f0);
-        let fields: [(&str, &Option<Num>, &mut f64, f64, f64); 8] = [
+        let given: [(&str, &Option<Num>); StabilityCriteria::FIELDS.len()] = [
+            ("max_angle_deg", &self.max_angle_deg),
+            ("recovery_level", &self.recovery_level),
+            ("recovery_time_s", &self.recovery_time_s),
+            ("floor_level", &self.floor_level),
+            ("floor_time_s", &self.floor_time_s),
+            ("nadir_hz", &self.nadir_hz),
+            ("zenith_hz", &self.zenith_hz),
+            ("final_band_hz", &self.final_band_hz),
+            ("over_voltage_pu", &self.over_voltage_pu),
+            ("over_voltage_time_s", &self.over_voltage_time_s),
+            ("sustained_over_voltage_pu", &self.sustained_over_voltage_pu),
             (
-                "max_angle_deg",
-                &self.max_angle_deg,
-                &mut out.max_angle_deg,
-                10.0,
-                720.0,
+                "sustained_over_voltage_time_s",
+                &self.sustained_over_voltage_time_s,
             ),
-            (
-                "recovery_level",
-                &self.recovery_level,
-                &mut out.recovery_level,
-                0.0,
-                1.0,
-            ),
-            (
-                "recovery_time_s",
-                &self.recovery_time_s,
-                &mut out.recovery_time_s,
-                0.0,
-                60.0,
-            ),
-            (
-                "floor_level",
-                &self.floor_level,
-                &mut out.floor_level,
-                0.0,
-                1.0,
-            ),
-            (
-                "floor_time_s",
-                &self.floor_time_s,
-                &mut out.floor_time_s,
-                0.0,
-                60.0,
-            ),
-            ("nadir_hz", &self.nadir_hz, &mut out.nadir_hz, 0.0, f0),
-            (
-                "zenith_hz",
-                &self.zenith_hz,
-                &mut out.zenith_hz,
-                f0,
-                2.0 * f0,
-            ),
-            (
-                "final_band_hz",
-                &self.final_band_hz,
-                &mut out.final_band_hz,
-                0.0,
-                f0,
-            ),
+            ("final_voltage_min_pu", &self.final_voltage_min_pu),
+            ("final_voltage_max_pu", &self.final_voltage_max_pu),
+            ("min_damping_ratio", &self.min_damping_ratio),
+            ("damping_window_s", &self.damping_window_s),
+            ("damping_angle_floor_deg", &self.damping_angle_floor_deg),
+            ("damping_voltage_floor_pu", &self.damping_voltage_floor_pu),
         ];
-        for (field, given, target, lo, hi) in fields {
-            if let Some(v) = given {
-                c.range(rec, field, v, lo, hi);
-                *target = *v.get_ref();
+        for (field, value) in given {
+            if let Some(v) = value
+                && let Err(e) = out.set_field(field, *v.get_ref(), f0)
+            {
+                c.problem(rec, field, v, v.get_ref(), &e.to_string());
             }
+        }
+        if out.final_voltage_min_pu >= out.final_voltage_max_pu
+            && let Some(v) = &self.final_voltage_min_pu
+        {
+            c.problem(
+                rec,
+                "final_voltage_min_pu",
+                v,
+                v.get_ref(),
+                &format!(
+                    "must be below final_voltage_max_pu = {}",
+                    out.final_voltage_max_pu
+                ),
+            );
         }
         if c.problems.is_empty() {
             Ok(out)
@@ -871,6 +868,35 @@ mod tests {
         assert!(
             msg.contains("line 6: [shedding], field `placement` = \"everywhere\""),
             "{msg}"
+        );
+    }
+
+    #[test]
+    fn every_criterion_is_set_by_its_field_and_checked_against_its_range() {
+        let text = format!(
+            "{MINIMAL}[criteria]\nover_voltage_pu = 1.25\nmin_damping_ratio = 0.05\n\
+             damping_window_s = 4.0\nfinal_voltage_max_pu = 0.95\n"
+        );
+        let e = parse_study(&text, Path::new("s.toml"))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains(
+                "line 7: [criteria], field `final_voltage_max_pu` = 0.95: must be between 1 and 3"
+            ),
+            "{e}"
+        );
+        let text = format!(
+            "{MINIMAL}[criteria]\nover_voltage_pu = 1.25\nmin_damping_ratio = 0.05\ndamping_window_s = 4.0\n"
+        );
+        let s = parse_study(&text, Path::new("s.toml")).unwrap();
+        assert_eq!(
+            (
+                s.criteria.over_voltage_pu,
+                s.criteria.min_damping_ratio,
+                s.criteria.damping_window_s
+            ),
+            (1.25, 0.05, 4.0)
         );
     }
 

@@ -37,7 +37,7 @@ use crate::blocklu::{BlockLu, Slot as LuSlot};
 use crate::dynamics::events::{Event, Scenario, TimedEvent};
 use crate::dynamics::load::{LoadDevice, LoadSettings};
 use crate::dynamics::unit::{MachineModelChoice, Unit};
-use crate::dynamics::verdict::{Monitor, StabilityCriteria, Verdict};
+use crate::dynamics::verdict::{LoadBus, Monitor, StabilityCriteria, Trip, TripCause, Verdict};
 use crate::dynamics::wind::WindDevice;
 use crate::model::{BusIdx, Grid, Outages};
 use crate::powerflow::PowerFlowSolution;
@@ -257,8 +257,10 @@ pub struct Simulation<'g> {
     monitor: Monitor,
     stats: RunStats,
     trajectory: Option<Trajectory>,
-    wind_trips: Vec<(String, f64)>,
-    motor_trips: Vec<(String, f64)>,
+    /// Rotor angles from the centre of inertia, degrees, per unit slot (damping signals).
+    angles_deg: Vec<f64>,
+    wind_trips: Vec<Trip>,
+    motor_trips: Vec<Trip>,
     stopped: bool,
 }
 
@@ -447,10 +449,20 @@ impl<'g> Simulation<'g> {
             monitor: Monitor::new(criteria, f0, load_buses),
             stats: RunStats::default(),
             trajectory: None,
+            angles_deg: Vec::new(),
             wind_trips: Vec::new(),
             motor_trips: Vec::new(),
             stopped: false,
         };
+        let units: Vec<String> = sim
+            .slots
+            .iter()
+            .filter(|s| matches!(s.device, Device::Unit(_)))
+            .map(|s| format!("machine \"{}\"", grid.machines[s.element].id))
+            .collect();
+        sim.angles_deg = vec![f64::NAN; units.len()];
+        sim.monitor
+            .record_damping_signals(options.duration_s, units);
         sim.update_islands();
         sim.check_initial_rest()?;
         if options.record {
@@ -530,16 +542,16 @@ impl<'g> Simulation<'g> {
 
     /// Ends the run: final checks, verdict, counters and the trajectory.
     pub fn finish(mut self) -> SimulationResult {
-        if !self.monitor.failed() {
-            let f_final = self
-                .centres()
-                .iter()
-                .max_by(|a, b| a.h.total_cmp(&b.h))
-                .map_or(self.grid.frequency_hz, |c| c.speed * self.grid.frequency_hz);
-            self.refresh_vmag();
-            self.monitor.finish(self.t, f_final, &self.vmag);
-        }
-        let early = self.monitor.failed() && self.t < self.opts.duration_s - 1e-9;
+        let reached_end = self.t >= self.opts.duration_s - 1e-9;
+        let f_final = self
+            .centres()
+            .iter()
+            .max_by(|a, b| a.h.total_cmp(&b.h))
+            .map_or(self.grid.frequency_hz, |c| c.speed * self.grid.frequency_hz);
+        self.refresh_vmag();
+        self.monitor
+            .finish(self.t, reached_end, f_final, &self.vmag);
+        let early = self.monitor.failed() && !reached_end;
         SimulationResult {
             verdict: Verdict {
                 failure: self.monitor.failure.clone(),
@@ -926,16 +938,22 @@ impl<'g> Simulation<'g> {
                 Device::Load(l) => {
                     if l.after_step(x, v, t) {
                         switched = true;
-                        self.motor_trips
-                            .push((self.grid.loads[s.element].id.clone(), t));
+                        self.motor_trips.push(Trip {
+                            id: self.grid.loads[s.element].id.clone(),
+                            time_s: t,
+                            cause: TripCause::LowVoltage,
+                        });
                     }
                 }
                 Device::Wind(w) => {
                     if w.after_step(x, t) {
                         switched = true;
-                        if w.tripped {
-                            self.wind_trips
-                                .push((self.grid.wind_plants[s.element].id.clone(), t));
+                        if let Some(cause) = w.trip_cause {
+                            self.wind_trips.push(Trip {
+                                id: self.grid.wind_plants[s.element].id.clone(),
+                                time_s: t,
+                                cause,
+                            });
                         }
                     }
                 }
@@ -965,6 +983,7 @@ impl<'g> Simulation<'g> {
             // The state just before the jump was recorded at the end of the step that landed
             // here (or at the start of the run).
             self.apply(&e.event);
+            self.monitor.note_event(self.t);
             applied = true;
         }
         if applied {
@@ -1174,6 +1193,20 @@ impl<'g> Simulation<'g> {
         }
         self.refresh_vmag();
         self.monitor.check_voltages(t, &self.vmag);
+        if self.monitor.wants_signals(t, self.h) {
+            let mut m = 0;
+            for s in &self.slots {
+                if let Device::Unit(_) = &s.device {
+                    self.angles_deg[m] = acc
+                        .iter()
+                        .find(|c| c.island == self.island[s.bus])
+                        .filter(|_| s.active)
+                        .map_or(f64::NAN, |c| (self.x[s.offset] - c.angle).to_degrees());
+                    m += 1;
+                }
+            }
+            self.monitor.record_signals(t, &self.angles_deg, &self.vmag);
+        }
         self.record();
         if self.monitor.failed() && self.opts.early_stop {
             self.stopped = true;
@@ -1227,12 +1260,16 @@ enum Which {
 
 /// Load buses for the voltage criteria: buses with in-service, energised demand, with their
 /// pre-contingency voltage.
-fn load_buses(grid: &Grid, pf: &PowerFlowSolution) -> Vec<(usize, u32, f64)> {
+fn load_buses(grid: &Grid, pf: &PowerFlowSolution) -> Vec<LoadBus> {
     grid.load_buses()
         .into_iter()
         .map(BusIdx::get)
         .filter(|&b| pf.energised[b])
-        .map(|b| (b, grid.buses[b].number, pf.v_pu[b]))
+        .map(|b| LoadBus {
+            idx: b,
+            number: grid.buses[b].number,
+            v_pre: pf.v_pu[b],
+        })
         .collect()
 }
 

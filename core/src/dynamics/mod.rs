@@ -16,6 +16,7 @@
 mod engine;
 mod events;
 mod load;
+pub mod modes;
 pub mod reduction;
 mod unit;
 mod verdict;
@@ -34,4 +35,7 @@ pub use reduction::{
     reduce_to_internal_nodes,
 };
 pub use unit::{MachineModel, MachineModelChoice};
-pub use verdict::{Criterion, Failure, Margins, StabilityCriteria, Verdict};
+pub use verdict::{
+    CriteriaFieldError, Criterion, DAMPING_SAMPLE_S, DampingMargin, Failure, MIN_DAMPING_WINDOW_S,
+    Margins, ModeMargin, StabilityCriteria, Trip, TripCause, Verdict,
+};

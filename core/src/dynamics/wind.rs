@@ -1,11 +1,12 @@
 //! A full-converter wind plant as a controlled current source (DOMAIN.md 5.2, our own generic
 //! formulation): measured voltage, active and reactive current lags, a current limit with
 //! reactive priority during voltage dips, reactive current injection in proportion to the dip,
-//! a ramp limit on active-current recovery, and a low-voltage ride-through monitor that trips
-//! the plant. No inertia; the phase-locked loop is ideal (the current follows the terminal
+//! a ramp limit on active-current recovery, and low- and high-voltage ride-through monitors that
+//! trip the plant. No inertia; the phase-locked loop is ideal (the current follows the terminal
 //! voltage angle), so weak-grid converter instability is out of reach of this model.
 
 use crate::Complex;
+use crate::dynamics::verdict::TripCause;
 use crate::model::{RideThroughPoint, WindDynamics};
 
 /// Voltage measurement time constant, s (common practice, DOMAIN.md 5.2).
@@ -51,9 +52,13 @@ pub(crate) struct WindDevice {
     ip_capped: bool,
     iq_capped: bool,
     ramp_limited: bool,
-    pub(crate) tripped: bool,
-    /// Time each ride-through level was first undershot in the current excursion (NaN: above).
+    /// Why the plant tripped, once it has.
+    pub(crate) trip_cause: Option<TripCause>,
+    /// Time each low-voltage ride-through level was first undershot in the current excursion
+    /// (NaN: above).
     below_since_s: Vec<f64>,
+    /// Time each high-voltage level was first exceeded in the current excursion (NaN: below).
+    above_since_s: Vec<f64>,
 }
 
 impl WindDevice {
@@ -77,8 +82,9 @@ impl WindDevice {
             ip_capped: false,
             iq_capped: false,
             ramp_limited: false,
-            tripped: false,
+            trip_cause: None,
             below_since_s: vec![f64::NAN; data.ride_through.len()],
+            above_since_s: vec![f64::NAN; data.high_voltage_ride_through.len()],
         };
         let x = vec![
             v0,
@@ -152,7 +158,7 @@ impl WindDevice {
 
     /// Derivatives into `dx`; returns the injected current, system pu.
     pub(crate) fn evaluate(&self, x: &[f64], v: Complex, dx: &mut [f64]) -> Complex {
-        if self.tripped {
+        if self.trip_cause.is_some() {
             dx[..3].fill(0.0);
             return Complex::new(0.0, 0.0);
         }
@@ -180,9 +186,9 @@ impl WindDevice {
     }
 
     /// After an accepted step at time `t_s`: updates the control mode and the ride-through
-    /// monitor. Returns true if the equations changed (mode switch or trip).
+    /// monitors. Returns true if the equations changed (mode switch or trip).
     pub(crate) fn after_step(&mut self, x: &[f64], t_s: f64) -> bool {
-        if self.tripped {
+        if self.trip_cause.is_some() {
             return false;
         }
         let vm = x[0];
@@ -200,31 +206,77 @@ impl WindDevice {
                 self.iq_capped,
                 self.ramp_limited,
             );
-        for (RideThroughPoint { v_pu, t_s: allowed }, since) in self
-            .data
-            .ride_through
-            .iter()
-            .zip(self.below_since_s.iter_mut())
-        {
-            if vm < *v_pu {
-                if since.is_nan() {
-                    *since = t_s;
-                }
-                if t_s - *since > *allowed + 1e-9 {
-                    self.tripped = true;
-                    return true;
-                }
+        let low = outside_too_long(&self.data.ride_through, &mut self.below_since_s, t_s, |v| {
+            vm < v
+        });
+        let high = outside_too_long(
+            &self.data.high_voltage_ride_through,
+            &mut self.above_since_s,
+            t_s,
+            |v| vm > v,
+        );
+        if low || high {
+            self.trip_cause = Some(if low {
+                TripCause::LowVoltage
             } else {
-                *since = f64::NAN;
-            }
+                TripCause::HighVoltage
+            });
+            return true;
         }
         changed
     }
 }
 
+/// Ride-through monitor: for each point of `curve`, starts a timer in `since_s` when
+/// `beyond(v_pu)` holds and clears it when not; true once a timer has run longer than its point
+/// allows.
+fn outside_too_long(
+    curve: &[RideThroughPoint],
+    since_s: &mut [f64],
+    t_s: f64,
+    beyond: impl Fn(f64) -> bool,
+) -> bool {
+    let mut trip = false;
+    for (p, since) in curve.iter().zip(since_s.iter_mut()) {
+        if beyond(p.v_pu) {
+            if since.is_nan() {
+                *since = t_s;
+            }
+            trip |= t_s - *since > p.t_s + 1e-9;
+        } else {
+            *since = f64::NAN;
+        }
+    }
+    trip
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn ride_through_timers_trip_beyond_the_envelope_only() {
+        // NERC PRC-024-2 Attachment 2 high-voltage envelope (DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH,
+        // from memory): 1.16 pu may last 0.5 s; 1.21 pu trips at once.
+        let curve = crate::model::DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH;
+        let run = |v: f64, lasting_s: f64| {
+            let mut since = [f64::NAN; 4];
+            let mut t = 0.0;
+            let mut tripped_at = None;
+            while t <= lasting_s + 1e-9 && tripped_at.is_none() {
+                if outside_too_long(&curve, &mut since, t, |level| v > level) {
+                    tripped_at = Some(t);
+                }
+                t += 0.01;
+            }
+            tripped_at
+        };
+        assert_eq!(run(1.16, 0.45), None);
+        let t = run(1.16, 2.0).unwrap();
+        assert!((t - 0.51).abs() < 1e-9, "{t}");
+        assert!(run(1.21, 1.0).unwrap() < 0.015);
+        assert_eq!(run(1.09, 10.0), None);
+    }
 
     #[test]
     fn active_current_share_is_a_smooth_step() {

@@ -267,6 +267,10 @@ enum ExciterRecord {
         t_lag_s: f64,
         gain: f64,
         t_amplifier_s: f64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        amplifier_max_pu: Option<f64>,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        amplifier_min_pu: Option<f64>,
         field_max_pu: f64,
         field_min_pu: f64,
     },
@@ -277,6 +281,27 @@ enum ExciterRecord {
         t_s: f64,
         field_max_pu: f64,
         field_min_pu: f64,
+    },
+}
+
+#[derive(Serialize, Deserialize, Clone, Copy)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+enum StabiliserRecord {
+    Pss1a {
+        gain: f64,
+        #[serde(default)]
+        t_transducer_s: f64,
+        t_washout_s: f64,
+        #[serde(default)]
+        t_lead_1_s: f64,
+        #[serde(default)]
+        t_lag_1_s: f64,
+        #[serde(default)]
+        t_lead_2_s: f64,
+        #[serde(default)]
+        t_lag_2_s: f64,
+        output_max_pu: f64,
+        output_min_pu: f64,
     },
 }
 
@@ -325,6 +350,10 @@ struct MachineDynamicsRecord {
     td0_subtransient_s: Option<f64>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     tq0_subtransient_s: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    saturation_at_1_0: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    saturation_at_1_2: Option<f64>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -353,6 +382,8 @@ struct MachineRecord {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     exciter: Option<ExciterRecord>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
+    stabiliser: Option<StabiliserRecord>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     governor: Option<GovernorRecord>,
 }
 
@@ -366,6 +397,8 @@ struct WindDynamicsRecord {
     p_recovery_pu_per_s: f64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     ride_through: Option<Vec<RideThroughRecord>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    high_voltage_ride_through: Option<Vec<RideThroughRecord>>,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -846,11 +879,18 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
         }
         let dynamics = m.dynamics.map(|d| machine_dynamics(&mut c, &s, d));
         let exciter = m.exciter.map(|e| exciter_data(&mut c, &s, e));
+        let stabiliser = m.stabiliser.map(|p| stabiliser_data(&mut c, &s, p));
         let governor = m.governor.map(|g| governor_data(&mut c, &s, g));
         if dynamics.is_none() && (exciter.is_some() || governor.is_some()) {
             c.report_record(
                 &s,
                 "an exciter or governor needs the machine's [machine.dynamics] data",
+            );
+        }
+        if stabiliser.is_some() && exciter.is_none() {
+            c.report_record(
+                &s,
+                "a stabiliser acts through the exciter: give [machine.exciter] too",
             );
         }
         machines.push(SyncMachine {
@@ -866,6 +906,7 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             rating_mva,
             dynamics,
             exciter,
+            stabiliser,
             governor,
             in_service: m.in_service,
         });
@@ -903,7 +944,13 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
             );
             let ride_through = match &d.ride_through {
                 None => DEFAULT_RIDE_THROUGH.to_vec(),
-                Some(points) => ride_through(&mut c, &s, points),
+                Some(points) => ride_through_curve(&mut c, &s, "ride_through", points, (0.0, 1.0)),
+            };
+            let high_voltage_ride_through = match &d.high_voltage_ride_through {
+                None => DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH.to_vec(),
+                Some(points) => {
+                    ride_through_curve(&mut c, &s, "high_voltage_ride_through", points, (1.0, 3.0))
+                }
             };
             WindDynamics {
                 i_max_pu: d.i_max_pu,
@@ -912,6 +959,7 @@ pub(super) fn parse(text: &str, path: &Path) -> Result<Grid, Error> {
                 t_current_s: d.t_current_s,
                 p_recovery_pu_per_s: d.p_recovery_pu_per_s,
                 ride_through,
+                high_voltage_ride_through,
             }
         });
         wind_plants.push(WindPlant {
@@ -1218,6 +1266,29 @@ fn machine_dynamics(c: &mut Checker<'_>, s: &Site, d: MachineDynamicsRecord) -> 
             );
         }
     }
+    let saturation = match (d.saturation_at_1_0, d.saturation_at_1_2) {
+        (None, None) => None,
+        (Some(at_1_0), Some(at_1_2)) => {
+            c.number(s, "dynamics.saturation_at_1_0", at_1_0, 1e-4, 1.0);
+            c.number(s, "dynamics.saturation_at_1_2", at_1_2, 1e-4, 5.0);
+            if at_1_2 <= at_1_0 {
+                c.report(
+                    s,
+                    "dynamics.saturation_at_1_2",
+                    at_1_2,
+                    format!("must exceed dynamics.saturation_at_1_0 = {at_1_0}"),
+                );
+            }
+            Some(Saturation { at_1_0, at_1_2 })
+        }
+        _ => {
+            c.report_record(
+                s,
+                "give both saturation points (saturation_at_1_0, saturation_at_1_2) or none",
+            );
+            None
+        }
+    };
     MachineDynamics {
         h_s: d.h_s,
         damping_pu: d.damping_pu,
@@ -1230,6 +1301,7 @@ fn machine_dynamics(c: &mut Checker<'_>, s: &Site, d: MachineDynamicsRecord) -> 
         td0_transient_s: d.td0_transient_s,
         tq0_transient_s: d.tq0_transient_s,
         subtransient,
+        saturation,
     }
 }
 
@@ -1277,6 +1349,8 @@ fn exciter_data(c: &mut Checker<'_>, s: &Site, e: ExciterRecord) -> ExciterData 
             t_lag_s,
             gain,
             t_amplifier_s,
+            amplifier_max_pu,
+            amplifier_min_pu,
             field_max_pu,
             field_min_pu,
         } => {
@@ -1284,15 +1358,31 @@ fn exciter_data(c: &mut Checker<'_>, s: &Site, e: ExciterRecord) -> ExciterData 
             c.number(s, "exciter.t_lead_s", t_lead_s, 0.0, 100.0);
             c.number(s, "exciter.t_lag_s", t_lag_s, 0.0, 100.0);
             c.positive(s, "exciter.gain", gain, 10_000.0);
-            c.number(s, "exciter.t_amplifier_s", t_amplifier_s, 1e-3, 10.0);
+            // 0: algebraic amplifier. A lag shorter than 1 ms is stiffer than any step resolves.
+            if t_amplifier_s != 0.0 {
+                c.number(s, "exciter.t_amplifier_s", t_amplifier_s, 1e-3, 10.0);
+            }
             c.number(s, "exciter.field_max_pu", field_max_pu, 0.0, 20.0);
             c.number(s, "exciter.field_min_pu", field_min_pu, -20.0, field_max_pu);
+            // The amplifier's range defaults to the bridge's at rated terminal voltage.
+            let amplifier_max_pu = amplifier_max_pu.unwrap_or(field_max_pu);
+            let amplifier_min_pu = amplifier_min_pu.unwrap_or(field_min_pu);
+            c.number(s, "exciter.amplifier_max_pu", amplifier_max_pu, 0.0, 100.0);
+            c.number(
+                s,
+                "exciter.amplifier_min_pu",
+                amplifier_min_pu,
+                -100.0,
+                amplifier_max_pu,
+            );
             ExciterData::St1a {
                 t_measure_s,
                 t_lead_s,
                 t_lag_s,
                 gain,
                 t_amplifier_s,
+                amplifier_max_pu,
+                amplifier_min_pu,
                 field_max_pu,
                 field_min_pu,
             }
@@ -1320,6 +1410,58 @@ fn exciter_data(c: &mut Checker<'_>, s: &Site, e: ExciterRecord) -> ExciterData 
     }
 }
 
+fn stabiliser_data(c: &mut Checker<'_>, s: &Site, p: StabiliserRecord) -> StabiliserData {
+    // Ranges: generous bounds around IEEE Std 421.5 sample data (from memory).
+    let StabiliserRecord::Pss1a {
+        gain,
+        t_transducer_s,
+        t_washout_s,
+        t_lead_1_s,
+        t_lag_1_s,
+        t_lead_2_s,
+        t_lag_2_s,
+        output_max_pu,
+        output_min_pu,
+    } = p;
+    c.number(s, "stabiliser.gain", gain, -1000.0, 1000.0);
+    c.number(s, "stabiliser.t_transducer_s", t_transducer_s, 0.0, 10.0);
+    c.number(s, "stabiliser.t_washout_s", t_washout_s, 0.1, 100.0);
+    for (lead, vl, lag, vg) in [
+        ("t_lead_1_s", t_lead_1_s, "t_lag_1_s", t_lag_1_s),
+        ("t_lead_2_s", t_lead_2_s, "t_lag_2_s", t_lag_2_s),
+    ] {
+        c.number(s, &format!("stabiliser.{lead}"), vl, 0.0, 100.0);
+        c.number(s, &format!("stabiliser.{lag}"), vg, 0.0, 100.0);
+        if vl > 0.0 && vg == 0.0 {
+            c.report(
+                s,
+                &format!("stabiliser.{lead}"),
+                vl,
+                format!("a lead needs its lag: give stabiliser.{lag} too"),
+            );
+        }
+    }
+    c.number(s, "stabiliser.output_max_pu", output_max_pu, 0.0, 10.0);
+    c.number(
+        s,
+        "stabiliser.output_min_pu",
+        output_min_pu,
+        -10.0,
+        output_max_pu,
+    );
+    StabiliserData {
+        gain,
+        t_transducer_s,
+        t_washout_s,
+        t_lead_1_s,
+        t_lag_1_s,
+        t_lead_2_s,
+        t_lag_2_s,
+        output_max_pu,
+        output_min_pu,
+    }
+}
+
 fn governor_data(c: &mut Checker<'_>, s: &Site, g: GovernorRecord) -> GovernorData {
     c.number(s, "governor.droop_pu", g.droop_pu, 0.01, 0.5);
     c.number(s, "governor.t_valve_s", g.t_valve_s, 1e-3, 10.0);
@@ -1343,22 +1485,42 @@ fn governor_data(c: &mut Checker<'_>, s: &Site, g: GovernorRecord) -> GovernorDa
     }
 }
 
-fn ride_through(
+/// A ride-through curve named `field`, its voltages within `v_range_pu`.
+fn ride_through_curve(
     c: &mut Checker<'_>,
     s: &Site,
+    field: &str,
     points: &[RideThroughRecord],
+    v_range_pu: (f64, f64),
 ) -> Vec<RideThroughPoint> {
     points
         .iter()
         .map(|p| {
-            c.number(s, "dynamics.ride_through.v_pu", p.v_pu, 0.0, 1.0);
-            c.number(s, "dynamics.ride_through.t_s", p.t_s, 0.0, 1000.0);
+            let (lo, hi) = v_range_pu;
+            c.number(s, &format!("dynamics.{field}.v_pu"), p.v_pu, lo, hi);
+            c.number(s, &format!("dynamics.{field}.t_s"), p.t_s, 0.0, 1000.0);
             RideThroughPoint {
                 v_pu: p.v_pu,
                 t_s: p.t_s,
             }
         })
         .collect()
+}
+
+/// A ride-through curve as written: left out when it is the default.
+fn curve_record(
+    curve: &[RideThroughPoint],
+    default: &[RideThroughPoint],
+) -> Option<Vec<RideThroughRecord>> {
+    (curve != default).then(|| {
+        curve
+            .iter()
+            .map(|p| RideThroughRecord {
+                v_pu: p.v_pu,
+                t_s: p.t_s,
+            })
+            .collect()
+    })
 }
 
 fn finite_or_none(x: f64, scale: f64) -> Option<f64> {
@@ -1507,6 +1669,8 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                     tq0_transient_s: d.tq0_transient_s,
                     td0_subtransient_s: d.subtransient.map(|x| x.td0_s),
                     tq0_subtransient_s: d.subtransient.map(|x| x.tq0_s),
+                    saturation_at_1_0: d.saturation.map(|x| x.at_1_0),
+                    saturation_at_1_2: d.saturation.map(|x| x.at_1_2),
                 }),
                 exciter: m.exciter.map(|e| match e {
                     ExciterData::St1a {
@@ -1515,6 +1679,8 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                         t_lag_s,
                         gain,
                         t_amplifier_s,
+                        amplifier_max_pu,
+                        amplifier_min_pu,
                         field_max_pu,
                         field_min_pu,
                     } => ExciterRecord::St1a {
@@ -1523,6 +1689,10 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                         t_lag_s,
                         gain,
                         t_amplifier_s,
+                        amplifier_max_pu: (amplifier_max_pu != field_max_pu)
+                            .then_some(amplifier_max_pu),
+                        amplifier_min_pu: (amplifier_min_pu != field_min_pu)
+                            .then_some(amplifier_min_pu),
                         field_max_pu,
                         field_min_pu,
                     },
@@ -1539,6 +1709,17 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                         field_max_pu,
                         field_min_pu,
                     },
+                }),
+                stabiliser: m.stabiliser.map(|p| StabiliserRecord::Pss1a {
+                    gain: p.gain,
+                    t_transducer_s: p.t_transducer_s,
+                    t_washout_s: p.t_washout_s,
+                    t_lead_1_s: p.t_lead_1_s,
+                    t_lag_1_s: p.t_lag_1_s,
+                    t_lead_2_s: p.t_lead_2_s,
+                    t_lag_2_s: p.t_lag_2_s,
+                    output_max_pu: p.output_max_pu,
+                    output_min_pu: p.output_min_pu,
                 }),
                 governor: m.governor.map(|g| GovernorRecord {
                     droop_pu: g.droop_pu,
@@ -1566,15 +1747,11 @@ pub(super) fn write(grid: &Grid) -> Result<String, Error> {
                     v_dip_pu: d.v_dip_pu,
                     t_current_s: d.t_current_s,
                     p_recovery_pu_per_s: d.p_recovery_pu_per_s,
-                    ride_through: (d.ride_through != DEFAULT_RIDE_THROUGH).then(|| {
-                        d.ride_through
-                            .iter()
-                            .map(|p| RideThroughRecord {
-                                v_pu: p.v_pu,
-                                t_s: p.t_s,
-                            })
-                            .collect()
-                    }),
+                    ride_through: curve_record(&d.ride_through, &DEFAULT_RIDE_THROUGH),
+                    high_voltage_ride_through: curve_record(
+                        &d.high_voltage_ride_through,
+                        &DEFAULT_HIGH_VOLTAGE_RIDE_THROUGH,
+                    ),
                 }),
             })
             .collect(),

@@ -114,3 +114,30 @@ pub(crate) fn scenario(name: &str) -> PathBuf {
         .join("../scenarios")
         .join(name)
 }
+
+/// The rotor angle of machine `machine` in a recorded run, from `after_s` on, resampled every
+/// `dt_s` by linear interpolation (an event time holds two samples; the steps need not be
+/// uniform).
+pub(crate) fn swing_samples(
+    tr: &holdfast_core::dynamics::Trajectory,
+    machine: usize,
+    after_s: f64,
+    dt_s: f64,
+) -> Vec<f64> {
+    let first = tr.time_s.iter().position(|&t| t > after_s).unwrap();
+    let (t, y) = (&tr.time_s[first..], &tr.angle_deg[machine][first..]);
+    let end = t[t.len() - 1];
+    let mut out = Vec::new();
+    let mut k = 0;
+    let mut at = t[0];
+    while at <= end + 1e-12 {
+        while k + 2 < t.len() && t[k + 1] < at {
+            k += 1;
+        }
+        let span = t[k + 1] - t[k];
+        let w = if span > 0.0 { (at - t[k]) / span } else { 1.0 };
+        out.push(y[k] + w * (y[k + 1] - y[k]));
+        at += dt_s;
+    }
+    out
+}
