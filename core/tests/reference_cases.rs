@@ -195,6 +195,31 @@ fn wscc9_matches_published_power_flow() {
 }
 
 #[test]
+fn two_area_system_matches_its_published_operating_point() {
+    // Kundur Example 12.6 (tests/data/SOURCES.md): G1 20.2, G2 10.5, G3 -6.8, G4 -17.0
+    // degrees; 185, 235, 176, 202 Mvar; G3 (the reference) 719 MW. Printed to 0.1 degree and
+    // 1 Mvar: tolerance 0.1 degree (angles measured from G3) and 1 Mvar.
+    let grid = format::load_grid(&common::data("two_area.toml")).unwrap();
+    let pf = solve(&grid, &Outages::none(), &PowerFlowOptions::default())
+        .converged()
+        .unwrap();
+    let published = [(20.2, 185.0), (10.5, 235.0), (-6.8, 176.0), (-17.0, 202.0)];
+    let g3 = pf.angle_rad[grid.machines[2].bus.get()].to_degrees();
+    for (k, (angle, q)) in published.iter().enumerate() {
+        let bus = grid.machines[k].bus.get();
+        let found = pf.angle_rad[bus].to_degrees() - g3 + (-6.8);
+        let q_mvar = pf.machine_q_pu[k] * grid.s_base_mva;
+        assert!(
+            (found - angle).abs() < 0.1,
+            "G{}: {found} deg vs {angle}",
+            k + 1
+        );
+        assert!((q_mvar - q).abs() < 1.0, "G{}: {q_mvar} Mvar vs {q}", k + 1);
+    }
+    assert!((pf.machine_p_pu[2] * grid.s_base_mva - 719.0).abs() < 0.5);
+}
+
+#[test]
 fn power_balance_holds_at_the_solution() {
     // Conservation of energy (a closed-form identity): generation = load + shunt + branch losses.
     let grid = cdf::load_cdf(&data("ieee30cdf.txt")).unwrap().grid;

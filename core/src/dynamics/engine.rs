@@ -925,7 +925,7 @@ impl<'g> Simulation<'g> {
         std::mem::swap(&mut self.v, &mut self.v_new);
         std::mem::swap(&mut self.f, &mut self.f_new);
         // Limiters and relays act at the step boundary.
-        let (mut clamped, mut switched) = (false, false);
+        let (mut clamped, mut switched, mut tripped) = (false, false, false);
         let t = self.t;
         for s in &mut self.slots {
             if !s.active {
@@ -937,7 +937,7 @@ impl<'g> Simulation<'g> {
                 Device::Unit(u) => clamped |= u.after_step(x, v),
                 Device::Load(l) => {
                     if l.after_step(x, v, t) {
-                        switched = true;
+                        (switched, tripped) = (true, true);
                         self.motor_trips.push(Trip {
                             id: self.grid.loads[s.element].id.clone(),
                             time_s: t,
@@ -949,6 +949,7 @@ impl<'g> Simulation<'g> {
                     if w.after_step(x, t) {
                         switched = true;
                         if let Some(cause) = w.trip_cause {
+                            tripped = true;
                             self.wind_trips.push(Trip {
                                 id: self.grid.wind_plants[s.element].id.clone(),
                                 time_s: t,
@@ -958,6 +959,10 @@ impl<'g> Simulation<'g> {
                     }
                 }
             }
+        }
+        if tripped {
+            // A trip is an event of its own: its transient is kept out of the damping window.
+            self.monitor.note_event(t);
         }
         if switched {
             if !self.solve_algebraic() {

@@ -590,7 +590,8 @@ impl Monitor {
         }
     }
 
-    /// Notes an event at `t_s`: starts the over-voltage checks at the first, and keeps the
+    /// Notes an event at `t_s` (scheduled, or a relay trip inside a device): starts the
+    /// over-voltage checks at the first, and keeps the
     /// damping window clear of the switching transient.
     pub(crate) fn note_event(&mut self, t_s: f64) {
         if self.disturbed_s.is_nan() {
