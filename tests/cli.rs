@@ -219,6 +219,75 @@ fn simulate_reports_a_verdict_and_writes_signals_and_plots() {
 }
 
 #[test]
+fn simulate_leaves_out_the_margins_a_stopped_run_did_not_reach() {
+    // The breaker-failure scenario loses synchronism in the first swing: the run stops there,
+    // so the end-of-window margins are absent (null in JSON, "not reached" in text), not
+    // nominal values.
+    let args = [
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--scenario",
+        "scenarios/quillmoor-breaker-failure.toml",
+    ];
+    let out = holdfast(&[&args[..], &["--json"]].concat());
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["stopped_early"], true, "{v}");
+    assert_eq!(v["failed_criterion"], "rotor-angle separation");
+    for margin in [
+        "final_frequency_hz",
+        "final_voltage_min_pu",
+        "final_voltage_max_pu",
+        "damping",
+        "slowest_recovery_s",
+    ] {
+        assert!(v[margin].is_null(), "{margin}: {}", v[margin]);
+    }
+    assert!(v["max_angle_deg"].as_f64().unwrap() > 180.0);
+    let out = holdfast(&args);
+    let stdout = text(&out.stdout);
+    assert!(
+        stdout.contains("final frequency") && stdout.contains("not reached (the run stopped at"),
+        "{stdout}"
+    );
+    assert!(!stdout.contains("60.000 Hz (band"), "{stdout}");
+}
+
+#[test]
+fn simulate_takes_criteria_by_name_and_refuses_unknown_ones() {
+    // The fault scenario runs to the end: every margin is reported, the damping analysis
+    // included, and a criterion changed on the command line is the one applied.
+    let out = holdfast(&[
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--scenario",
+        "scenarios/quillmoor-fault.toml",
+        "--criterion",
+        "final_voltage_min_pu=0.99",
+        "--json",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["stopped_early"], false);
+    assert!(v["final_frequency_hz"].as_f64().is_some() && v["damping"].is_object(), "{v}");
+    let lowest = v["final_voltage_min_pu"].as_f64().unwrap();
+    assert!(lowest < 0.99, "{v}");
+    assert_eq!(v["failed_criterion"], "final voltage", "{v}");
+    let out = holdfast(&[
+        "simulate",
+        "scenarios/quillmoor.toml",
+        "--criterion",
+        "damping_ratio=0.05",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(
+        err.contains("damping_ratio=0.05") && err.contains("min_damping_ratio"),
+        "{err}"
+    );
+}
+
+#[test]
 fn simulate_names_a_bad_event() {
     let out = holdfast(&[
         "simulate",
