@@ -269,7 +269,10 @@ fn simulate_takes_criteria_by_name_and_refuses_unknown_ones() {
     assert!(out.status.success(), "{}", text(&out.stderr));
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["stopped_early"], false);
-    assert!(v["final_frequency_hz"].as_f64().is_some() && v["damping"].is_object(), "{v}");
+    assert!(
+        v["final_frequency_hz"].as_f64().is_some() && v["damping"].is_object(),
+        "{v}"
+    );
     let lowest = v["final_voltage_min_pu"].as_f64().unwrap();
     assert!(lowest < 0.99, "{v}");
     assert_eq!(v["failed_criterion"], "final voltage", "{v}");

@@ -7,9 +7,10 @@
 //! 1990) in its multi-signal form:
 //! 1. each signal fills a Hankel matrix of `N - L` rows and `L + 1` columns
 //!    (`L = N / 3`); the matrices are stacked one above the other;
-//! 2. a thin singular value decomposition of the stack keeps the right singular vectors whose
-//!    singular values belong to components larger than [`PencilOptions::rank_amplitude`] (and
-//!    above a numerical floor), at most [`PencilOptions::max_order`] of them;
+//! 2. the right singular vectors of the stack (the eigenvectors of its small Gram matrix) are
+//!    kept whose singular values belong to components larger than
+//!    [`PencilOptions::rank_amplitude`] (and above a numerical floor), at most
+//!    [`PencilOptions::max_order`] of them;
 //! 3. with `V1` and `V2` those vectors without their last and without their first row, the
 //!    eigenvalues of `pinv(V1) V2` are the poles `z_i`; `s_i = ln(z_i) / dt` gives the decay
 //!    rate `Re s`, the frequency `|Im s| / 2 pi` and the damping ratio `-Re s / |s|`;
@@ -23,8 +24,8 @@
 //! kinds are best scaled to a common meaning first (the stability verdict divides each by its
 //! amplitude floor).
 
-use faer::Mat;
 use faer::linalg::solvers::SolveLstsq;
+use faer::{Mat, Side};
 
 use crate::Complex;
 
@@ -115,15 +116,34 @@ pub fn estimate_modes(
     }
     let l = n / 3;
     let rows = n - l;
-    let hankel = Mat::<f64>::from_fn(rows * signals.len(), l + 1, |i, j| {
-        signals[i / rows][i % rows + j]
-    });
-    let svd = hankel.thin_svd().ok()?;
-    let sigma: Vec<f64> = svd.S().column_vector().iter().copied().collect();
+    // The right singular vectors of the stacked Hankel matrix H are the eigenvectors of
+    // G = H^T H, and its singular values the roots of G's eigenvalues. G is small
+    // ((l + 1) x (l + 1)) and, H being Hankel, each signal adds to it along diagonals:
+    // G[a + 1][b + 1] = G[a][b] + y[rows + a] y[rows + b] - y[a] y[b].
+    let cols = l + 1;
+    let mut gram = Mat::<f64>::zeros(cols, cols);
+    for y in signals {
+        for b in 0..cols {
+            let mut g: f64 = (0..rows).map(|i| y[i] * y[i + b]).sum();
+            gram[(b, 0)] += g;
+            for a in 1..cols - b {
+                g += y[rows + a - 1] * y[rows + a - 1 + b] - y[a - 1] * y[a - 1 + b];
+                gram[(a + b, a)] += g;
+            }
+        }
+    }
+    let eigen = gram.self_adjoint_eigen(Side::Lower).ok()?;
+    // Eigenvalues come in nondecreasing order: the largest singular values last.
+    let by_size: Vec<usize> = (0..cols).rev().collect();
+    let sigma: Vec<f64> = by_size
+        .iter()
+        .map(|&k| eigen.S().column_vector()[k].max(0.0).sqrt())
+        .collect();
     // A sinusoid of amplitude a in one signal owns two singular values of about
-    // a * sqrt(rows * (l + 1) / 4).
+    // a * sqrt(rows * (l + 1) / 4); below 1e-7 of the largest, the values squared lie in the
+    // rounding of G.
     let floor =
-        (options.rank_amplitude * (rows as f64 * (l + 1) as f64 / 4.0).sqrt()).max(sigma[0] * 1e-9);
+        (options.rank_amplitude * (rows as f64 * cols as f64 / 4.0).sqrt()).max(sigma[0] * 1e-7);
     let order = sigma
         .iter()
         .take_while(|&&s| s > floor)
@@ -133,7 +153,8 @@ pub fn estimate_modes(
     if order == 0 {
         return Some(quiet);
     }
-    let v = svd.V();
+    let u = eigen.U();
+    let v = Mat::<f64>::from_fn(cols, order, |i, j| u[(i, by_size[j])]);
     let v1 = Mat::<f64>::from_fn(l, order, |i, j| v[(i, j)]);
     let v2 = Mat::<f64>::from_fn(l, order, |i, j| v[(i + 1, j)]);
     let pencil = v1.qr().solve_lstsq(&v2);

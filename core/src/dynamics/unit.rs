@@ -128,14 +128,16 @@ impl Exciter {
     /// from. `dx` is scratch. True if anything changed.
     fn after_step(&mut self, x: &mut [f64], vt: f64, vs: f64, dx: &mut [f64]) -> bool {
         let mut changed = false;
+        let mut out = exciter_evaluate(self, x, vt, vs, dx);
         if let Some((lo, hi)) = state_limits(&self.data) {
             let k = self.offset + exciter_n_states(&self.data) - 1;
-            let drive = exciter_evaluate(self, x, vt, vs, dx).drive;
-            changed |= self.state_limit.update(&mut x[k], drive, lo, hi);
+            if self.state_limit.update(&mut x[k], out.drive, lo, hi) {
+                changed = true;
+                out = exciter_evaluate(self, x, vt, vs, dx);
+            }
         }
-        let amplified = exciter_evaluate(self, x, vt, vs, dx).amplified;
         let (lo, hi) = output_limits(&self.data, vt);
-        changed | self.output_clamp.update(amplified, lo, hi)
+        changed | self.output_clamp.update(out.amplified, lo, hi)
     }
 }
 

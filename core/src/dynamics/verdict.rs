@@ -440,8 +440,27 @@ const DAMPING_SETTLE_S: f64 = 1.0;
 /// Frequencies of the oscillations the damping criterion judges, Hz: electromechanical modes
 /// (about 0.1-2.5 Hz) and slow control oscillations up to 5 Hz.
 const DAMPING_BAND_HZ: (f64, f64) = (0.1, 5.0);
-/// Most signals handed to the mode estimate (the strongest, relative to their floors).
-const DAMPING_MAX_SIGNALS: usize = 32;
+/// Most signals handed to the mode estimate (those that oscillate most, relative to their
+/// floors): a mode above its floor shows in the signals it is largest in.
+const DAMPING_MAX_SIGNALS: usize = 12;
+
+/// The largest distance of the samples `y` (equally spaced) from their least-squares line.
+fn departure_from_line(y: &[f64]) -> f64 {
+    let n = y.len() as f64;
+    let mean_k = (n - 1.0) / 2.0;
+    let mean_y = y.iter().sum::<f64>() / n;
+    let (mut sxy, mut sxx) = (0.0, 0.0);
+    for (k, v) in y.iter().enumerate() {
+        let dk = k as f64 - mean_k;
+        sxy += dk * (v - mean_y);
+        sxx += dk * dk;
+    }
+    let slope = if sxx > 0.0 { sxy / sxx } else { 0.0 };
+    y.iter()
+        .enumerate()
+        .map(|(k, v)| (v - mean_y - slope * (k as f64 - mean_k)).abs())
+        .fold(0.0, f64::max)
+}
 
 /// A load bus watched by the voltage criteria.
 #[derive(Clone, Copy, Debug)]
@@ -465,11 +484,15 @@ struct SignalRecorder {
     /// Per signal, the samples so far.
     series: Vec<Vec<f64>>,
     last_t: f64,
+    /// The signals at `last_t`, and at the point being recorded (kept to reuse their storage).
     last: Vec<f64>,
+    now: Vec<f64>,
 }
 
 impl SignalRecorder {
-    fn push(&mut self, t: f64, values: &[f64]) {
+    /// Records the signals in `self.now` at time `t`.
+    fn push(&mut self, t: f64) {
+        let values = &self.now;
         if self.last.is_empty() {
             self.last.extend_from_slice(values);
             self.last_t = t;
@@ -487,8 +510,7 @@ impl SignalRecorder {
             next = self.start_s + self.series[0].len() as f64 * DAMPING_SAMPLE_S;
         }
         self.last_t = t;
-        self.last.clear();
-        self.last.extend_from_slice(values);
+        std::mem::swap(&mut self.last, &mut self.now);
     }
 }
 
@@ -561,6 +583,7 @@ impl Monitor {
             start_s: (end_s - c.damping_window_s).max(0.0),
             series: vec![Vec::new(); labels.len()],
             last: Vec::new(),
+            now: Vec::new(),
             last_t: f64::NAN,
             labels,
             floors,
@@ -582,17 +605,17 @@ impl Monitor {
         let Some(r) = &mut self.recorder else {
             return;
         };
-        let mut values = Vec::with_capacity(r.labels.len());
-        values.extend_from_slice(angles_deg);
-        values.extend(self.load_buses.iter().map(|b| v_pu[b.idx]));
-        if values.len() == r.labels.len() {
-            r.push(t_s, &values);
+        r.now.clear();
+        r.now.extend_from_slice(angles_deg);
+        r.now.extend(self.load_buses.iter().map(|b| v_pu[b.idx]));
+        if r.now.len() == r.labels.len() {
+            r.push(t_s);
         }
     }
 
     /// Notes an event at `t_s` (scheduled, or a relay trip inside a device): starts the
-    /// over-voltage checks at the first, and keeps the
-    /// damping window clear of the switching transient.
+    /// over-voltage checks at the first, and keeps the damping window clear of the switching
+    /// transient.
     pub(crate) fn note_event(&mut self, t_s: f64) {
         if self.disturbed_s.is_nan() {
             self.disturbed_s = t_s;
@@ -719,6 +742,12 @@ impl Monitor {
             let v = v_pu[idx];
             let highest = &mut self.margins.max_voltage_pu;
             *highest = Some(highest.map_or(v, |m| m.max(v)));
+            let quiet = v <= c.over_voltage_pu.min(c.sustained_over_voltage_pu)
+                && self.above_high_since[k].is_nan()
+                && self.above_sustained_since[k].is_nan();
+            if quiet {
+                continue;
+            }
             for (level, allowed, since, longest, criterion) in [
                 (
                     c.over_voltage_pu,
@@ -836,18 +865,17 @@ impl Monitor {
             return;
         }
         let window_start_s = r.start_s + skip as f64 * DAMPING_SAMPLE_S;
-        // Each usable signal in units of its floor, about its mean.
+        // Each usable signal in units of its floor, with its largest departure from the straight
+        // line through it (drift is not oscillation).
         let mut scaled: Vec<(usize, Vec<f64>, f64)> = r
             .series
             .iter()
             .enumerate()
             .filter(|(_, s)| s[skip..].iter().all(|v| v.is_finite()))
             .map(|(k, s)| {
-                let part = &s[skip..];
-                let mean = part.iter().sum::<f64>() / part.len() as f64;
-                let y: Vec<f64> = part.iter().map(|v| (v - mean) / r.floors[k]).collect();
-                let peak = y.iter().fold(0.0_f64, |m, v| m.max(v.abs()));
-                (k, y, peak)
+                let y: Vec<f64> = s[skip..].iter().map(|v| v / r.floors[k]).collect();
+                let wiggle = departure_from_line(&y);
+                (k, y, wiggle)
             })
             .collect();
         let mut margin = DampingMargin {
@@ -856,9 +884,10 @@ impl Monitor {
             modes_above_floor: 0,
             worst: None,
         };
-        // Signals that stay within a quarter of their floor of their mean cannot hold a mode
-        // at its floor (unless two modes cancel each other): a quiet run needs no estimate.
-        scaled.retain(|(_, _, peak)| *peak >= 0.25);
+        // A mode at its floor moves its signal by its floor about the signal's trend; a signal
+        // that stays within half its floor of a straight line holds none (unless two modes of
+        // like size cancel each other), and a quiet run needs no estimate.
+        scaled.retain(|(_, _, wiggle)| *wiggle >= 0.5);
         if !scaled.is_empty() {
             scaled.sort_by(|a, b| b.2.total_cmp(&a.2).then(a.0.cmp(&b.0)));
             scaled.truncate(DAMPING_MAX_SIGNALS);
