@@ -1198,46 +1198,43 @@ impl<'g> Simulation<'g> {
         }
         self.refresh_vmag();
         self.monitor.check_voltages(t, &self.vmag);
-        if self.monitor.wants_signals(t, self.h) {
-            let mut m = 0;
-            for s in &self.slots {
-                if let Device::Unit(_) = &s.device {
-                    self.angles_deg[m] = acc
-                        .iter()
-                        .find(|c| c.island == self.island[s.bus])
-                        .filter(|_| s.active)
-                        .map_or(f64::NAN, |c| (self.x[s.offset] - c.angle).to_degrees());
-                    m += 1;
-                }
-            }
+        let damping_signals = self.monitor.wants_signals(t, self.h);
+        if damping_signals || self.trajectory.is_some() {
+            self.unit_angles(&acc);
+        }
+        if damping_signals {
             self.monitor.record_signals(t, &self.angles_deg, &self.vmag);
         }
-        self.record();
+        self.record(&acc);
         if self.monitor.failed() && self.opts.early_stop {
             self.stopped = true;
         }
     }
 
-    fn record(&mut self) {
-        if self.trajectory.is_none() {
-            return;
+    /// Each unit's rotor angle from its island's centre of inertia (`acc`), degrees, into
+    /// `angles_deg` (NaN for a unit out of service).
+    fn unit_angles(&mut self, acc: &[Centre]) {
+        let units = self
+            .slots
+            .iter()
+            .filter(|s| matches!(s.device, Device::Unit(_)));
+        for (angle, s) in self.angles_deg.iter_mut().zip(units) {
+            *angle = acc
+                .iter()
+                .find(|c| c.island == self.island[s.bus])
+                .filter(|_| s.active)
+                .map_or(f64::NAN, |c| (self.x[s.offset] - c.angle).to_degrees());
         }
-        let acc = self.centres();
+    }
+
+    /// Records the current point in the trajectory, if one is kept (`unit_angles` filled).
+    fn record(&mut self, acc: &[Centre]) {
         let Some(tr) = &mut self.trajectory else {
             return;
         };
         tr.time_s.push(self.t);
-        let mut m = 0;
-        for s in &self.slots {
-            if let Device::Unit(_) = &s.device {
-                let angle = acc
-                    .iter()
-                    .find(|c| c.island == self.island[s.bus])
-                    .filter(|_| s.active)
-                    .map_or(f64::NAN, |c| (self.x[s.offset] - c.angle).to_degrees());
-                tr.angle_deg[m].push(angle);
-                m += 1;
-            }
+        for (series, angle) in tr.angle_deg.iter_mut().zip(&self.angles_deg) {
+            series.push(*angle);
         }
         for (k, v) in self.v.iter().enumerate() {
             tr.voltage_pu[k].push(v.norm());
