@@ -8,7 +8,12 @@
 //! to 1 ms below the first unstable one. 5-s runs, half-cycle steps unless STEP_S is given (0:
 //! half a cycle).
 
-#![allow(clippy::print_stdout, clippy::unwrap_used, clippy::expect_used)] // reason: a one-off report on the terminal; bad input is a usage error
+#![allow(
+    clippy::print_stdout,
+    clippy::print_stderr,
+    clippy::unwrap_used,
+    clippy::expect_used
+)] // reason: a one-off report on the terminal; bad input is a usage error
 
 use std::path::Path;
 

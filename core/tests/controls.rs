@@ -292,14 +292,13 @@ td0_transient_s = 6.0
                 / (2.0 * eps)
         });
         let eigenvalues = jacobian.eigenvalues().unwrap();
-        let mode = eigenvalues
+        eigenvalues
             .iter()
             .filter(|l| l.im > 0.0)
             .map(|l| (l.im / (2.0 * PI), -l.re / l.norm()))
             .filter(|(f, _)| (0.5..2.5).contains(f))
             .min_by(|a, b| (a.0 - 1.0).abs().total_cmp(&(b.0 - 1.0).abs()))
-            .unwrap();
-        mode
+            .unwrap()
     }
 }
 

@@ -7,7 +7,12 @@
 //! Prints a table of old outcome -> new outcome and, for each, the criteria that failed the
 //! old action.
 
-#![allow(clippy::print_stdout, clippy::unwrap_used, clippy::expect_used)] // reason: a one-off report on the terminal; bad input is a usage error
+#![allow(
+    clippy::print_stdout,
+    clippy::print_stderr,
+    clippy::unwrap_used,
+    clippy::expect_used
+)] // reason: a one-off report on the terminal; bad input is a usage error
 
 use std::collections::BTreeMap;
 use std::path::Path;
