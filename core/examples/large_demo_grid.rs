@@ -26,8 +26,9 @@ const HEADER: &str = "\
 #   - lines from typical per-km parameters (345 kV: r 0.037, x 0.367 ohm/km, b 4.518 uS/km;
 #     230 kV: r 0.050, x 0.488 ohm/km, b 3.371 uS/km), autotransformers x 0.10 pu on 700 MVA,
 #     step-up transformers x 0.13 pu on 1.1 x the machine rating, X/R 40;
-#   - hydro, steam, combined-cycle and peaking plants with the dynamic data, exciters and
-#     governors of the small demo grid's units of the same kind (per unit on their own ratings);
+#   - hydro, steam, combined-cycle and peaking plants with the dynamic data, exciters,
+#     stabilisers and governors of the small demo grid's units of the same kind (per unit on
+#     their own ratings);
 #   - loads at power factor 0.95 with the small demo grid's load model, motor shares 0.2-0.6 and
 #     shed-able fractions 0.1-0.5; wind plants with its converter data;
 #   - eight synchronous condensers (150 MVA) at the weakest substations, and fixed capacitors
