@@ -10,8 +10,8 @@ use std::f64::consts::PI;
 use std::path::Path;
 
 use holdfast_core::dynamics::{
-    Criterion, Event, MachineModelChoice, Scenario, Simulation, SimulationOptions,
-    StabilityCriteria, TimedEvent, modes, simulate,
+    Criterion, Event, MachineModelChoice, Scenario, Simulation, SimulationOptions, TimedEvent,
+    modes, simulate,
 };
 use holdfast_core::powerflow::{PowerFlowOptions, PowerFlowSolution, solve};
 use holdfast_core::{BranchIdx, Complex, Grid, Outages, format};
@@ -75,7 +75,7 @@ fn wscc9_published_fault_is_stable_with_classical_models() {
     let opts = SimulationOptions {
         machine_model: MachineModelChoice::Classical,
         duration_s: 3.0,
-        criteria: Some(angle_only(60.0)),
+        criteria: Some(common::angle_only(60.0)),
         ..SimulationOptions::default()
     };
     let out = simulate(&grid, &Outages::none(), &pf, &scenario, &opts).unwrap();
@@ -106,7 +106,7 @@ fn two_axis_machine_with_frozen_flux_and_equal_reactances_is_the_classical_model
         let opts = SimulationOptions {
             machine_model: model,
             duration_s: 3.0,
-            criteria: Some(angle_only(60.0)),
+            criteria: Some(common::angle_only(60.0)),
             record: true,
             ..SimulationOptions::default()
         };
@@ -133,22 +133,6 @@ fn two_axis_machine_with_frozen_flux_and_equal_reactances_is_the_classical_model
 
 /// Angle criterion only: the closed forms and the book's example judge rotor angles, with
 /// constant mechanical power and no frequency control.
-/// Only the rotor-angle and voltage-recovery criteria: the frequency, over-voltage,
-/// final-voltage and damping checks off (these tests judge swings, not the policy).
-fn angle_only(f0: f64) -> StabilityCriteria {
-    StabilityCriteria {
-        nadir_hz: 0.0,
-        zenith_hz: f64::INFINITY,
-        final_band_hz: f64::INFINITY,
-        over_voltage_pu: f64::INFINITY,
-        sustained_over_voltage_pu: f64::INFINITY,
-        final_voltage_min_pu: 0.0,
-        final_voltage_max_pu: f64::INFINITY,
-        damping_window_s: 0.0,
-        ..StabilityCriteria::for_frequency(f0)
-    }
-}
-
 /// A single machine against an infinite bus: machine `G` at bus 1 behind `x'd = 0.3`, a line
 /// of `X - 0.3` to bus 2, where a machine of negligible reactance and practically infinite
 /// inertia holds the voltage at 1.0 pu. The terminal set-point is chosen (closed form) so that
@@ -222,7 +206,7 @@ fn classical(duration_s: f64, step_s: Option<f64>) -> SimulationOptions {
         machine_model: MachineModelChoice::Classical,
         duration_s,
         step_s,
-        criteria: Some(angle_only(60.0)),
+        criteria: Some(common::angle_only(60.0)),
         ..SimulationOptions::default()
     }
 }
@@ -326,27 +310,35 @@ fn peaks(t: &[f64], y: &[f64]) -> Vec<(f64, f64)> {
         .collect()
 }
 
-#[test]
-fn small_signal_frequency_and_damping_match_the_textbook_example() {
-    // ANALYTIC_CHECKS.md section 2 (Saadat Examples 11.2 and 11.3): E' = 1.35, V = 1, X = 0.65,
-    // H = 9.94 s, Pm = 0.6, D = 0.138 (Saadat's form, per rad/s), 60 Hz. Expected damped
-    // frequency 5.9995 rad/s and damping ratio 0.2131 (computed there; Saadat prints the same,
-    // from memory). Our damping acts on speed in pu, so D = 0.138 * w0.
+/// The single machine of ANALYTIC_CHECKS.md section 2 (Saadat Examples 11.2 and 11.3:
+/// E' = 1.35, V = 1, X = 0.65, H = 9.94 s, Pm = 0.6, D = 0.138 per rad/s, i.e. 0.138 w0 on speed
+/// in pu, 60 Hz) ringing down after a one-cycle terminal fault (about 2 degrees), recorded for
+/// `duration_s`.
+fn saadat_ringdown(duration_s: f64) -> holdfast_core::dynamics::Trajectory {
     let w0 = 2.0 * PI * 60.0;
     let grid = smib(1.35, 0.65, 0.6, 9.94, 0.138 * w0);
     let pf = pf_of(&grid);
-    // A one-cycle terminal fault sets off a small oscillation (about 2 degrees).
-    let mut opts = classical(6.0, None);
+    let mut opts = classical(duration_s, None);
     opts.record = true;
-    let out = simulate(
+    simulate(
         &grid,
         &Outages::none(),
         &pf,
         &terminal_fault(&grid, 1.0 / 60.0),
         &opts,
     )
-    .unwrap();
-    let tr = out.trajectory.unwrap();
+    .unwrap()
+    .trajectory
+    .unwrap()
+}
+
+#[test]
+fn small_signal_frequency_and_damping_match_the_textbook_example() {
+    // ANALYTIC_CHECKS.md section 2 (Saadat Examples 11.2 and 11.3): E' = 1.35, V = 1, X = 0.65,
+    // H = 9.94 s, Pm = 0.6, D = 0.138 (Saadat's form, per rad/s), 60 Hz. Expected damped
+    // frequency 5.9995 rad/s and damping ratio 0.2131 (computed there; Saadat prints the same,
+    // from memory). Our damping acts on speed in pu, so D = 0.138 * w0.
+    let tr = saadat_ringdown(6.0);
     let d0 = tr.angle_deg[0][0];
     let swing: Vec<f64> = tr.angle_deg[0].iter().map(|d| d - d0).collect();
     // After the clearing only (an event time holds two samples, before and after the jump).
@@ -367,20 +359,7 @@ fn mode_estimate_of_the_simulated_ringdown_matches_the_closed_form() {
     // damped frequency 5.9995 rad/s (0.9549 Hz), damping ratio 0.2131. The mode estimate
     // (matrix pencil) on the simulated swing after the clearing must give the frequency within
     // 1 % and the damping ratio within 0.005.
-    let w0 = 2.0 * PI * 60.0;
-    let grid = smib(1.35, 0.65, 0.6, 9.94, 0.138 * w0);
-    let pf = pf_of(&grid);
-    let mut opts = classical(4.0, None);
-    opts.record = true;
-    let out = simulate(
-        &grid,
-        &Outages::none(),
-        &pf,
-        &terminal_fault(&grid, 1.0 / 60.0),
-        &opts,
-    )
-    .unwrap();
-    let swing = common::swing_samples(&out.trajectory.unwrap(), 0, 0.05, 0.05);
+    let swing = common::swing_samples(&saadat_ringdown(4.0), 0, 0.05, 0.05);
     let estimate = modes::estimate_modes(&[swing], 0.05, &modes::PencilOptions::default()).unwrap();
     let m = estimate
         .modes

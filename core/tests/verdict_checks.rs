@@ -6,8 +6,8 @@
 use std::path::Path;
 
 use holdfast_core::dynamics::{
-    Criterion, Event, MachineModelChoice, Scenario, SimulationOptions, StabilityCriteria,
-    TimedEvent, TripCause, simulate,
+    Criterion, Event, MachineModelChoice, Scenario, SimulationOptions, SimulationResult,
+    StabilityCriteria, TimedEvent, TripCause, simulate,
 };
 use holdfast_core::powerflow::{PowerFlowOptions, PowerFlowSolution, solve};
 use holdfast_core::{Complex, Grid, Outages, format};
@@ -99,6 +99,18 @@ fn rejection(grid: &Grid) -> Scenario {
     }
 }
 
+/// The rejection run on `grid` under `criteria` (early stop on, signals recorded).
+fn reject(grid: &Grid, pf: &PowerFlowSolution, criteria: StabilityCriteria) -> SimulationResult {
+    simulate(
+        grid,
+        &Outages::none(),
+        pf,
+        &rejection(grid),
+        &options(criteria, true),
+    )
+    .unwrap()
+}
+
 fn options(criteria: StabilityCriteria, early_stop: bool) -> SimulationOptions {
     SimulationOptions {
         machine_model: MachineModelChoice::Classical,
@@ -130,14 +142,7 @@ fn a_load_rejection_fails_the_over_voltage_criterion_at_the_bus_and_time_it_shou
     let expected = rejected_voltage(&grid, &pf);
     assert!(expected > 1.25 && expected < 1.4, "{expected}");
     let defaults = StabilityCriteria::for_frequency(60.0);
-    let out = simulate(
-        &grid,
-        &Outages::none(),
-        &pf,
-        &rejection(&grid),
-        &options(defaults, true),
-    )
-    .unwrap();
+    let out = reject(&grid, &pf, defaults);
     let tr = out.trajectory.unwrap();
     let v2 = *tr.voltage_pu[1].last().unwrap();
     eprintln!("load rejection: bus 2 at {v2:.5} pu, closed form {expected:.5} pu");
@@ -174,14 +179,7 @@ fn a_load_rejection_fails_the_over_voltage_criterion_at_the_bus_and_time_it_shou
         final_voltage_max_pu: 1.5,
         ..defaults
     };
-    let out = simulate(
-        &grid,
-        &Outages::none(),
-        &pf,
-        &rejection(&grid),
-        &options(relaxed, true),
-    )
-    .unwrap();
+    let out = reject(&grid, &pf, relaxed);
     assert!(out.verdict.is_stable(), "{:?}", out.verdict.failure);
     let m = &out.verdict.margins;
     // The envelope margins count time above the levels in force: never above 1.5 pu.
@@ -194,14 +192,7 @@ fn a_load_rejection_fails_the_over_voltage_criterion_at_the_bus_and_time_it_shou
         over_voltage_pu: 1.45,
         ..defaults
     };
-    let out = simulate(
-        &grid,
-        &Outages::none(),
-        &pf,
-        &rejection(&grid),
-        &options(sustained, true),
-    )
-    .unwrap();
+    let out = reject(&grid, &pf, sustained);
     let f = out.verdict.failure.unwrap();
     assert_eq!(f.criterion, Criterion::SustainedOverVoltage);
     assert!(f.time_s > 1.1 && f.time_s <= 1.1 + h + 1e-9, "{}", f.time_s);
@@ -225,14 +216,7 @@ fn a_wind_plant_trips_on_high_voltage_when_its_measured_voltage_crosses_the_enve
         final_voltage_max_pu: 2.0,
         ..StabilityCriteria::for_frequency(60.0)
     };
-    let out = simulate(
-        &grid,
-        &Outages::none(),
-        &pf,
-        &rejection(&grid),
-        &options(lenient, true),
-    )
-    .unwrap();
+    let out = reject(&grid, &pf, lenient);
     let trips = &out.verdict.wind_trips;
     assert_eq!(trips.len(), 1, "{trips:?}");
     let h = 1.0 / 120.0;

@@ -4,6 +4,7 @@
 
 use std::path::{Path, PathBuf};
 
+use holdfast_core::dynamics::StabilityCriteria;
 use holdfast_core::powerflow::{PowerFlowOptions, solve};
 use holdfast_core::{Outages, format};
 
@@ -140,4 +141,20 @@ pub(crate) fn swing_samples(
         at += dt_s;
     }
     out
+}
+
+/// Only the rotor-angle and voltage-recovery criteria: the frequency, over-voltage,
+/// final-voltage and damping checks off (these tests judge swings, not the policy).
+pub(crate) fn angle_only(f0: f64) -> StabilityCriteria {
+    StabilityCriteria {
+        nadir_hz: 0.0,
+        zenith_hz: f64::INFINITY,
+        final_band_hz: f64::INFINITY,
+        over_voltage_pu: f64::INFINITY,
+        sustained_over_voltage_pu: f64::INFINITY,
+        final_voltage_min_pu: 0.0,
+        final_voltage_max_pu: f64::INFINITY,
+        damping_window_s: 0.0,
+        ..StabilityCriteria::for_frequency(f0)
+    }
 }
