@@ -198,8 +198,20 @@ fn main() {
         MachineModelChoice::Detailed,
     );
     strict.options.tolerance = 1e-6;
+    // The same run with the stabilisers taken out, to separate their cost from the solver's.
+    let mut bare_grid = demo_case.grid.clone();
+    for m in &mut bare_grid.machines {
+        m.stabiliser = None;
+    }
+    let bare = case(
+        "Quillmoor demo, no stabilisers",
+        bare_grid,
+        demo_case.scenario.clone(),
+        MachineModelChoice::Detailed,
+    );
     cases.push(demo_case);
     cases.push(strict);
+    cases.push(bare);
     for n in [500, 2000] {
         let g = give_dynamics(synthetic::meshed_grid(n, 1));
         let mid = BusIdx((g.n_buses() / 2) as u32);
